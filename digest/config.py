@@ -97,7 +97,9 @@ class BandConfig(Strict):
     name: Code = Field(description="Name that checks refer to.")
     metric: Code = Field(description="Metric (raw or derived) whose series is banded.")
     method: Literal["mean_sd"] = Field("mean_sd", description="How centre and spread are learned.")
-    k: float = Field(3.0, gt=0, description="Width of the band in spreads either side of the centre.")
+    k: float = Field(
+        3.0, gt=0, description="Width of the band in spreads either side of the centre."
+    )
     window: int = Field(12, ge=2, description="How many past periods feed the band.")
     gap: int = Field(0, ge=0, description="Periods right before the evaluated one left out.")
     min_points: int = Field(6, ge=2, description="Fewest reported values needed for a band.")
@@ -161,10 +163,14 @@ class MailConfig(Strict):
     admin: EmailAddress | None = Field(None, description="Administrator: alarms and run summaries.")
     admin_name: Line = Field("the data manager", description="Who to ask to change a subscription.")
     recipients: Path | None = Field(None, description="CSV of recipients.")
-    templates: Path | None = Field(None, description="Folder whose templates override the defaults.")
+    templates: Path | None = Field(
+        None, description="Folder whose templates override the defaults."
+    )
     charts: int = Field(10, ge=0, le=50, description="Alerts per digest that get a chart.")
     history: int = Field(6, ge=1, le=36, description="Past values shown with each alert.")
-    all_clear: bool = Field(False, description="Send a short message when a recipient has no alerts.")
+    all_clear: bool = Field(
+        False, description="Send a short message when a recipient has no alerts."
+    )
     domain: Line = Field("localhost.localdomain", description="Domain for Message-ID headers.")
 
 
@@ -302,7 +308,11 @@ def _key_path(loc: tuple[Any, ...]) -> str:
     for item in loc:
         if isinstance(item, int):
             parts[-1] = f"{parts[-1]}[{item}]" if parts else f"[{item}]"
-        elif item in {"band", "bounds", "dropout", "relation", "silence"} and parts and "[" in parts[-1]:
+        elif (
+            item in {"band", "bounds", "dropout", "relation", "silence"}
+            and parts
+            and "[" in parts[-1]
+        ):
             continue  # the union tag pydantic inserts after check[i]
         else:
             parts.append(str(item))
@@ -337,7 +347,7 @@ def _resolve_paths(config: Config, base: Path) -> Config:
     )
 
 
-def cross_check(config: Config) -> list[str]:  # noqa: C901 - a flat list of rules reads best
+def cross_check(config: Config) -> list[str]:
     """Rules that span keys: names exist, levels are declared, expressions are safe."""
     problems: list[str] = []
     levels = set(config.data.levels)
@@ -404,7 +414,9 @@ def cross_check(config: Config) -> list[str]:  # noqa: C901 - a flat list of rul
 def _level_problems(key: str, given: list[str], declared: set[str]) -> list[str]:
     unknown = [lv for lv in given if lv not in declared]
     if unknown:
-        return [f"{key}: unknown level(s) {', '.join(unknown)}; declared: {', '.join(sorted(declared))}"]
+        return [
+            f"{key}: unknown level(s) {', '.join(unknown)}; declared: {', '.join(sorted(declared))}"
+        ]
     return []
 
 

@@ -89,7 +89,7 @@ def _refuse(node: ast.AST, text: str, why: str) -> ExpressionError:
     return ExpressionError(f"{why}: {part!r} in {text!r}")
 
 
-def _compile(node: ast.expr, text: str, names: set[str]) -> Evaluator:  # noqa: C901
+def _compile(node: ast.expr, text: str, names: set[str]) -> Evaluator:
     if isinstance(node, ast.Constant):
         if isinstance(node.value, bool) or not isinstance(node.value, int | float):
             if isinstance(node.value, bool):

@@ -137,7 +137,7 @@ def load_hierarchy(path: Path, levels: Sequence[str]) -> Hierarchy:
     return build_hierarchy(path, rows, levels)
 
 
-def build_hierarchy(  # noqa: C901 - one pass of checks, each a few lines
+def build_hierarchy(
     path: Path | str, rows: Sequence[tuple[int, dict[str, str]]], levels: Sequence[str]
 ) -> Hierarchy:
     problems: list[str] = []
@@ -161,7 +161,9 @@ def build_hierarchy(  # noqa: C901 - one pass of checks, each a few lines
                 f"{path} line {line}: unknown level {level!r} for {row['id'].strip()!r}; "
                 f"expected one of {', '.join(levels)} ([data] levels)"
             )
-    roots = [(line, row["id"].strip()) for line, row in clean if not (row.get("parent") or "").strip()]
+    roots = [
+        (line, row["id"].strip()) for line, row in clean if not (row.get("parent") or "").strip()
+    ]
     if len(roots) > 1:
         listed = ", ".join(f"{uid!r} (line {line})" for line, uid in roots)
         problems.append(f"{path}: more than one root (unit without parent): {listed}; keep one")
@@ -185,7 +187,7 @@ def build_hierarchy(  # noqa: C901 - one pass of checks, each a few lines
     problems += _cycle_problems(path, clean, parent)
     if problems:
         raise HierarchyError(problems)
-    for i, (line, row) in enumerate(clean):
+    for i, (line, _row) in enumerate(clean):
         if parent[i] < 0:
             if level[i] != 0:
                 problems.append(
@@ -222,7 +224,7 @@ def _cycle_problems(
             seen_here.append(node)
             node = int(parent[node])
         if node >= 0:  # came back to a node on this walk: a cycle
-            cycle = seen_here[seen_here.index(node):]
+            cycle = seen_here[seen_here.index(node) :]
             if not reported.intersection(cycle):
                 reported.update(cycle)
                 ids = " -> ".join(clean[i][1]["id"].strip() for i in [*cycle, node])

@@ -1,0 +1,75 @@
+"""``digest lint``: every check a run would make on config and data, without running it.
+
+Returns one line per problem; an empty list means the run would start cleanly.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from digest.config import Config, load_config
+from digest.errors import ConfigError, DigestError
+from digest.hierarchy import Hierarchy, load_hierarchy
+from digest.loading import build_dataset, read_values_file
+
+MAX_REJECTS_LISTED = 20
+
+
+def lint(config_path: Path) -> list[str]:
+    try:
+        config = load_config(config_path)
+    except ConfigError as exc:
+        return exc.problems
+    try:
+        hierarchy = load_hierarchy(config.data.units, config.data.levels)
+    except ConfigError as exc:
+        return exc.problems
+    problems = _values_problems(config, hierarchy)
+    problems += _mail_problems(config, hierarchy)
+    return problems
+
+
+def _values_problems(config: Config, hierarchy: Hierarchy) -> list[str]:
+    try:
+        frame = read_values_file(config.data.values)
+    except DigestError as exc:
+        return [str(exc)]
+    loaded = build_dataset(frame, str(config.data.values), config, hierarchy)
+    rejects = loaded.rejects
+    problems = [
+        f"{row.source} line {row.line}: {row.reason}"
+        for row in rejects.head(MAX_REJECTS_LISTED).itertuples()
+    ]
+    if len(rejects) > MAX_REJECTS_LISTED:
+        problems.append(
+            f"{config.data.values}: ... and {len(rejects) - MAX_REJECTS_LISTED} more rejected "
+            "rows; `digest run` writes them all to rejects.csv"
+        )
+    share = loaded.stats.reject_share
+    if share > config.data.max_reject_share:
+        problems.append(
+            f"{config.data.values}: {share:.1%} of rows rejected, above max_reject_share "
+            f"{config.data.max_reject_share:.1%}: a run would fail"
+        )
+    return problems
+
+
+def _mail_problems(config: Config, hierarchy: Hierarchy) -> list[str]:
+    problems: list[str] = []
+    if config.mail.recipients is not None:
+        from digest.recipients import load_recipients
+
+        programmes = {c.programme for c in config.check}
+        try:
+            load_recipients(config.mail.recipients, hierarchy, programmes)
+        except ConfigError as exc:
+            problems += exc.problems
+    try:
+        from digest.render import check_templates
+
+        check_templates(config.mail.templates)
+    except ImportError:
+        pass
+    except ConfigError as exc:
+        problems += exc.problems
+    return problems
