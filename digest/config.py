@@ -172,6 +172,10 @@ class MailConfig(Strict):
         False, description="Send a short message when a recipient has no alerts."
     )
     domain: Line = Field("localhost.localdomain", description="Domain for Message-ID headers.")
+    remind_every_days: int = Field(
+        7, ge=1, description="Open alerts are repeated in a digest after this many days."
+    )
+    run_summary: bool = Field(False, description="Mail the administrator a summary after each run.")
 
 
 class RelayConfig(Strict):
@@ -220,6 +224,46 @@ class SinkConfig(Strict):
     maildir: Path = Field(Path("out/maildir"), description="Where the sink stores messages.")
 
 
+class ScheduleConfig(Strict):
+    cron: Line = Field("30 5 * * *", description="Standard 5-field crontab expression.")
+    timezone: Line = Field("UTC", description="IANA time zone the expression is read in.")
+    grace_hours: float = Field(
+        24, ge=0, description="A run missed while the daemon was down is made up within this."
+    )
+
+    @field_validator("timezone")
+    @classmethod
+    def _known_zone(cls, value: str) -> str:
+        from digest.schedule import check_timezone
+
+        check_timezone(value)
+        return value
+
+    @field_validator("cron")
+    @classmethod
+    def _valid_cron(cls, value: str) -> str:
+        from digest.schedule import make_trigger
+
+        make_trigger(value, "UTC")
+        return value
+
+
+class LedgerConfig(Strict):
+    url: Line = Field(
+        "sqlite:///out/ledger.sqlite",
+        description="SQLAlchemy URL of the state database; relative SQLite paths follow the file.",
+    )
+
+
+class DeliveryConfig(Strict):
+    retry_first_minutes: float = Field(5, gt=0, description="Wait before the first retry.")
+    retry_max_minutes: float = Field(240, gt=0, description="Longest wait between retries.")
+    give_up_hours: float = Field(72, gt=0, description="A message still unsent after this fails.")
+    relay_alarm_minutes: float = Field(
+        60, gt=0, description="Alarm when the relay has been unreachable this long."
+    )
+
+
 class OutputConfig(Strict):
     dir: Path = Field(Path("out"), description="Default folder for alerts.csv, bands.parquet ...")
 
@@ -234,6 +278,9 @@ class Config(Strict):
     relay: RelayConfig = Field(default_factory=RelayConfig)  # type: ignore[arg-type]
     sink: SinkConfig = Field(default_factory=SinkConfig)  # type: ignore[arg-type]
     output: OutputConfig = Field(default_factory=OutputConfig)  # type: ignore[arg-type]
+    schedule: ScheduleConfig = Field(default_factory=ScheduleConfig)  # type: ignore[arg-type]
+    ledger: LedgerConfig = Field(default_factory=LedgerConfig)  # type: ignore[arg-type]
+    delivery: DeliveryConfig = Field(default_factory=DeliveryConfig)  # type: ignore[arg-type]
     source: Path | None = Field(None, exclude=True, description="The file this was read from.")
 
     # ---- lookups used by the stages -------------------------------------------------
@@ -281,7 +328,7 @@ def config_from_dict(raw: dict[str, Any], path: Path) -> Config:
         config = Config.model_validate(raw)
     except ValidationError as exc:
         raise ConfigError([f"{path}: {line}" for line in format_validation_error(exc)]) from None
-    config = _resolve_paths(config, path.parent)
+    config = _resolve_paths(config, path)
     problems = cross_check(config)
     if problems:
         raise ConfigError([f"{path}: {p}" for p in problems])
@@ -319,7 +366,9 @@ def _key_path(loc: tuple[Any, ...]) -> str:
     return ".".join(parts) or "(top level)"
 
 
-def _resolve_paths(config: Config, base: Path) -> Config:
+def _resolve_paths(config: Config, path: Path) -> Config:
+    base = path.parent
+
     def resolve(p: Path | None) -> Path | None:
         return None if p is None else (p if p.is_absolute() else (base / p))
 
@@ -335,6 +384,7 @@ def _resolve_paths(config: Config, base: Path) -> Config:
     relay = config.relay.model_copy(update={"ca_file": resolve(config.relay.ca_file)})
     sink = config.sink.model_copy(update={"maildir": resolve(config.sink.maildir)})
     output = config.output.model_copy(update={"dir": resolve(config.output.dir)})
+    ledger = config.ledger.model_copy(update={"url": _resolve_sqlite(config.ledger.url, base)})
     return config.model_copy(
         update={
             "data": data,
@@ -342,9 +392,18 @@ def _resolve_paths(config: Config, base: Path) -> Config:
             "relay": relay,
             "sink": sink,
             "output": output,
-            "source": base,
+            "ledger": ledger,
+            "source": path,
         }
     )
+
+
+def _resolve_sqlite(url: str, base: Path) -> str:
+    """``sqlite:///relative/path`` is read relative to the config file's folder."""
+    prefix = "sqlite:///"
+    if url.startswith(prefix) and not url.startswith(prefix + "/") and url != "sqlite://":
+        return prefix + str((base / url[len(prefix) :]).resolve())
+    return url
 
 
 def cross_check(config: Config) -> list[str]:
