@@ -200,7 +200,8 @@ def dropout_check(check: DropoutCheck, ctx: Context) -> Found:
     first = ctx.level.metrics[check.first].values[:, ctx.column]
     last = ctx.level.metrics[check.last].values[:, ctx.column]
     with np.errstate(divide="ignore", invalid="ignore"):
-        dropout = np.where(first > 0, (first - last) / first * 100.0, np.nan)
+        # multiply before dividing: exact for counts, so 7 of 50 is 14.0 %, not 14.000000000000002
+        dropout = np.where(first > 0, (first - last) * 100.0 / first, np.nan)
     lo = -np.inf if check.low is None else check.low
     hi = np.inf if check.high is None else check.high
     outside = ~np.isnan(dropout) & ((dropout < lo) | (dropout > hi))

@@ -103,6 +103,8 @@ def _compile(node: ast.expr, text: str, names: set[str]) -> Evaluator:
         if name in {"True", "False"}:
             flag = float(name == "True")
             return lambda v: np.float64(flag)
+        if name.startswith("_"):  # never a metric code (config refuses them too)
+            raise _refuse(node, text, "names starting with _ are not allowed")
         names.add(name)
         return lambda v: np.asarray(v[name], dtype=float)
     if isinstance(node, ast.UnaryOp):
@@ -120,7 +122,7 @@ def _compile(node: ast.expr, text: str, names: set[str]) -> Evaluator:
         if isinstance(node.op, ast.Div):
             return lambda v: _divide(left(v), right(v))
         if isinstance(node.op, ast.FloorDiv):
-            return lambda v: np.floor(_divide(left(v), right(v)))
+            return lambda v: _floor_divide(left(v), right(v))
         if isinstance(node.op, ast.Mod):
             return lambda v: _modulo(left(v), right(v))
         op = _BINOPS.get(type(node.op))
@@ -198,6 +200,14 @@ def _divide(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     a, b = np.broadcast_arrays(np.asarray(a, float), np.asarray(b, float))
     out = np.full(a.shape, np.nan)
     np.divide(a, b, out=out, where=b != 0)
+    return out
+
+
+def _floor_divide(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    # Python's float //, not floor(a / b): 1 // 0.1 is 9.0 while floor(1 / 0.1) is 10.0
+    a, b = np.broadcast_arrays(np.asarray(a, float), np.asarray(b, float))
+    out = np.full(a.shape, np.nan)
+    np.floor_divide(a, b, out=out, where=b != 0)
     return out
 
 

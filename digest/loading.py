@@ -86,6 +86,7 @@ def read_values_file(path: Path) -> pd.DataFrame:
             frame = pacsv.read_csv(path, convert_options=options).to_pandas()
         except pa.ArrowInvalid as exc:
             raise DataError(f"{path}: cannot read as CSV: {exc}") from None
+        frame.index = _csv_line_index(path, len(frame))
     missing = [c for c in VALUE_COLUMNS if c not in frame.columns]
     if missing:
         raise DataError(
@@ -112,7 +113,7 @@ def load_values(config: Config, hierarchy: Hierarchy) -> Loaded:
 def build_dataset(frame: pd.DataFrame, source: str, config: Config, hierarchy: Hierarchy) -> Loaded:
     kind = config.data.period
     n = len(frame)
-    line = np.arange(2, n + 2)
+    line = frame.index.to_numpy() if frame.index.name == "line" else np.arange(2, n + 2)
     unit_text = _text(frame["unit"])
     metric_text = _text(frame["metric"])
     period_text = _text(frame["period"])
@@ -192,6 +193,16 @@ def build_dataset(frame: pd.DataFrame, source: str, config: Config, hierarchy: H
         rows_loaded=len(keep),
     )
     return Loaded(dataset, rejects, stats)
+
+
+def _csv_line_index(path: Path, rows: int) -> pd.Index:
+    """File line of each data row (header = 1), counting the empty lines the reader skips."""
+    data = path.read_bytes()
+    if data[:1] in {b"\n", b"\r"} or b"\n\n" in data or b"\r\n\r\n" in data:
+        lines = [n for n, text in enumerate(data.splitlines(), start=1) if text]
+        if len(lines) > rows:
+            return pd.Index(lines[1 : rows + 1], name="line")
+    return pd.RangeIndex(2, rows + 2, name="line")
 
 
 def _text(column: pd.Series) -> np.ndarray:

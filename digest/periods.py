@@ -12,8 +12,8 @@ from typing import Literal
 
 PeriodKind = Literal["month", "week"]
 
-_MONTH = re.compile(r"^(\d{4})-(\d{2})$")
-_WEEK = re.compile(r"^(\d{4})-?W(\d{2})$")
+_MONTH = re.compile(r"^(\d{4})-(\d{2})$", re.ASCII)  # ASCII digits only
+_WEEK = re.compile(r"^(\d{4})-?W(\d{2})$", re.ASCII)
 
 
 def parse_period(text: str, kind: PeriodKind) -> int:

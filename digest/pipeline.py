@@ -157,7 +157,10 @@ def _up_to(loaded: Loaded, as_of: str | None, config: Config) -> tuple[Loaded, i
         ordinal = parse_period(as_of, config.data.period)
     except ValueError as exc:
         raise DataError(f"--as-of: {exc}") from None
-    column = dataset.column(ordinal)
+    try:
+        column = dataset.column(ordinal)
+    except ValueError as exc:  # a bad argument, not a failed stage
+        raise DataError(f"--as-of: {exc}") from None
     trimmed = Dataset(
         dataset.hierarchy,
         dataset.kind,
