@@ -1,6 +1,7 @@
 """The ``digest`` command line. One short function per subcommand; all work is elsewhere.
 
-Exit codes: 0 success, 1 the run failed, 2 bad usage or configuration.
+Exit codes: 0 success, 1 the run failed (or, for ``status``, something needs attention),
+2 bad usage or configuration.
 """
 
 from __future__ import annotations
@@ -8,8 +9,7 @@ from __future__ import annotations
 import argparse
 import logging
 import sys
-from collections.abc import Sequence
-from datetime import UTC, datetime
+from collections.abc import Callable, Sequence
 from pathlib import Path
 
 from digest import __version__
@@ -22,7 +22,9 @@ log = logging.getLogger("digest.cli")
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
-    _configure_logging(args.verbose)
+    from digest.logs import configure_logging
+
+    configure_logging(args.verbose, getattr(args, "log_format", "text"))
     try:
         return int(args.func(args))
     except DigestError as exc:
@@ -41,59 +43,120 @@ def build_parser() -> argparse.ArgumentParser:
     )
     parser.add_argument("--version", action="version", version=f"digest {__version__}")
     parser.add_argument("-v", "--verbose", action="count", default=0, help="more log output")
-    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
-
-    run = sub.add_parser("run", help="run the pipeline for one period and write its outputs")
-    _config_argument(run)
-    run.add_argument("--as-of", metavar="PERIOD", help="period to evaluate (default: latest)")
-    run.add_argument(
-        "--out", type=Path, metavar="DIR", help="output folder (default: [output] dir)"
+    parser.add_argument(
+        "--log-format", choices=("text", "json"), default="text", help="log lines as text or JSON"
     )
-    run.set_defaults(func=cmd_run)
-
-    lint = sub.add_parser("lint", help="check the config and the data; non-zero on problems")
-    _config_argument(lint)
-    lint.set_defaults(func=cmd_lint)
-
-    demo = sub.add_parser("demo", help="generate the invented demo scenario and run on it")
-    demo.add_argument("--dir", type=Path, default=Path("demo"), help="demo folder (default: demo)")
-    demo.add_argument("--fresh", action="store_true", help="regenerate the demo data")
-    demo.set_defaults(func=cmd_demo)
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    for name, (helptext, build, func) in COMMANDS.items():
+        command = sub.add_parser(name, help=helptext, description=helptext)
+        build(command)
+        command.set_defaults(func=func)
     return parser
 
 
 def _config_argument(parser: argparse.ArgumentParser) -> None:
     parser.add_argument(
-        "--config",
-        "-c",
-        type=Path,
-        required=True,
-        metavar="FILE",
-        help="the TOML configuration file",
+        "--config", "-c", type=Path, required=True, metavar="FILE", help="the TOML configuration"
     )
 
 
-def _configure_logging(verbose: int) -> None:
-    level = logging.WARNING - 10 * min(verbose, 2)
-    logging.basicConfig(level=level, format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+# ---- run, preview, demo -------------------------------------------------------------------
 
 
-# ---- subcommands ------------------------------------------------------------------------
+def _run_arguments(parser: argparse.ArgumentParser) -> None:
+    _config_argument(parser)
+    parser.add_argument("--as-of", metavar="PERIOD", help="period to evaluate (default: latest)")
+    parser.add_argument(
+        "--out", type=Path, metavar="DIR", help="output folder (default: [output] dir)"
+    )
+    parser.add_argument(
+        "--dry-run",
+        action="store_true",
+        help="deliver to the local sink under [sink] instead of the relay; the ledger is untouched",
+    )
 
 
 def cmd_run(args: argparse.Namespace) -> int:
-    from digest.outputs import write_outputs
-    from digest.pipeline import new_run_id, run_pipeline
-    from digest.summary import print_summary
+    from digest.jobs import default_now, run_job
 
     config = load_config(args.config)
-    out_dir = args.out or config.output.dir
-    run_id = new_run_id(datetime.now(UTC))
-    progress = _progress_printer() if sys.stderr.isatty() else None
-    result = run_pipeline(config, run_id=run_id, as_of=args.as_of, progress=progress)
-    paths = write_outputs(result, out_dir)
-    print_summary(result, paths)
+    outcome = run_job(
+        config,
+        now=default_now(),
+        mode="dry-run" if args.dry_run else "relay",
+        as_of=args.as_of,
+        out_dir=args.out,
+        progress=_progress() if sys.stderr.isatty() else None,
+    )
+    _report(outcome)
+    return 0 if outcome.status != "failed" else 1
+
+
+def _preview_arguments(parser: argparse.ArgumentParser) -> None:
+    _config_argument(parser)
+    parser.add_argument("--as-of", metavar="PERIOD", help="period to evaluate (default: latest)")
+    parser.add_argument(
+        "--out", type=Path, required=True, metavar="DIR", help="folder for .eml/.html/.txt"
+    )
+
+
+def cmd_preview(args: argparse.Namespace) -> int:
+    from digest.jobs import default_now, run_job
+
+    config = load_config(args.config)
+    outcome = run_job(
+        config, now=default_now(), mode="preview", as_of=args.as_of, preview_dir=args.out
+    )
+    _report(outcome)
     return 0
+
+
+def _demo_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--dir", type=Path, default=Path("demo"), help="demo folder")
+    parser.add_argument("--fresh", action="store_true", help="regenerate the demo data")
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    from digest import demo_data
+    from digest.jobs import default_now, run_job
+
+    config = load_config(args.dir / "config.toml")
+    data_dir = config.data.units.parent
+    if args.fresh or not (config.data.units.exists() and config.data.values.exists()):
+        print(f"generating the invented demo scenario into {data_dir} ...")
+        demo_data.generate(data_dir)
+    now = default_now()
+    outcome = run_job(config, now=now, mode="dry-run", progress=_progress())
+    preview = config.output.dir / "preview"
+    from digest.jobs import write_previews
+
+    outcome.files.update(write_previews(outcome.digests, preview))
+    _report(outcome, show_files=False)
+    print(f"\nopen a digest: {preview}/<address>.html (or .txt, .eml)")
+    return 0
+
+
+def _report(outcome, show_files: bool = True) -> None:  # type: ignore[no-untyped-def]
+    from digest.summary import print_digest_table, print_summary
+
+    if outcome.result is not None:
+        files = (
+            {k: v for k, v in outcome.files.items() if "." not in k}
+            if not show_files
+            else outcome.files
+        )
+        print_summary(outcome.result, files)
+    print_digest_table(outcome)
+
+
+def _progress() -> Callable[[str], None]:
+    def show(stage: str) -> None:
+        print(f"  ... {stage}", file=sys.stderr, flush=True)
+
+    return show
+
+
+# ---- lint, sink ------------------------------------------------------------------------
 
 
 def cmd_lint(args: argparse.Namespace) -> int:
@@ -109,30 +172,107 @@ def cmd_lint(args: argparse.Namespace) -> int:
     return 0
 
 
-def cmd_demo(args: argparse.Namespace) -> int:
-    from digest import demo_data
-    from digest.outputs import write_outputs
-    from digest.pipeline import new_run_id, run_pipeline
-    from digest.summary import print_summary
+def _sink_arguments(parser: argparse.ArgumentParser) -> None:
+    from digest.sink import add_sink_arguments
 
-    config_path = args.dir / "config.toml"
-    config = load_config(config_path)
-    data_dir = config.data.units.parent
-    if args.fresh or not (config.data.units.exists() and config.data.values.exists()):
-        print(f"generating the invented demo scenario into {data_dir} ...")
-        demo_data.generate(data_dir)
-    run_id = new_run_id(datetime.now(UTC))
-    result = run_pipeline(config, run_id=run_id, progress=_progress_printer())
-    paths = write_outputs(result, config.output.dir)
-    print_summary(result, paths)
+    add_sink_arguments(parser)
+
+
+def cmd_sink(args: argparse.Namespace) -> int:
+    from digest.sink import sink_command
+
+    return sink_command(args)
+
+
+# ---- operations: serve, status, outbox, ack ------------------------------------------------
+
+
+def _serve_arguments(parser: argparse.ArgumentParser) -> None:
+    _config_argument(parser)
+
+
+def cmd_serve(args: argparse.Namespace) -> int:
+    from digest.daemon import serve
+
+    return serve(load_config(args.config))
+
+
+def cmd_status(args: argparse.Namespace) -> int:
+    from digest.jobs import default_now
+    from digest.status import status_report
+
+    healthy, lines = status_report(load_config(args.config), default_now())
+    print("\n".join(lines))
+    return 0 if healthy else 1
+
+
+def _outbox_arguments(parser: argparse.ArgumentParser) -> None:
+    _config_argument(parser)
+    parser.add_argument("--retry", metavar="ID", help="queue a failed message again")
+    parser.add_argument(
+        "--all", action="store_true", help="list sent messages too (default: pending and failed)"
+    )
+
+
+def cmd_outbox(args: argparse.Namespace) -> int:
+    from digest.jobs import default_now
+    from digest.ledger import Ledger
+
+    config = load_config(args.config)
+    with Ledger.open(config.ledger.url) as ledger:
+        if args.retry:
+            item = ledger.outbox.requeue(args.retry, default_now())
+            print(f"queued again: {item.id} to {item.recipient}")
+            return 0
+        items = ledger.outbox.list()
+    shown = [i for i in items if args.all or i.status in ("pending", "sending", "failed")]
+    if not shown:
+        print("outbox: nothing pending or failed")
+    for i in shown:
+        error = f"  last error: {i.last_error}" if i.last_error else ""
+        print(f"{i.status:<8} {i.id}  to {i.recipient}  tries {i.attempts}{error}")
     return 0
 
 
-def _progress_printer():  # type: ignore[no-untyped-def]
-    def show(stage: str) -> None:
-        print(f"  ... {stage}", file=sys.stderr, flush=True)
+def _ack_arguments(parser: argparse.ArgumentParser) -> None:
+    _config_argument(parser)
+    parser.add_argument("alert_id", type=int, metavar="ALERT_ID", help="the id shown in digests")
+    parser.add_argument("--note", required=True, help="why: e.g. 'verified against the register'")
 
-    return show
+
+def cmd_ack(args: argparse.Namespace) -> int:
+    from digest.jobs import default_now
+    from digest.ledger import Ledger
+
+    config = load_config(args.config)
+    with Ledger.open(config.ledger.url) as ledger:
+        record = ledger.acknowledge(args.alert_id, default_now(), args.note)
+    print(f"acknowledged alert {record.id}: {record.check} at {record.unit}, {record.period}")
+    return 0
+
+
+def _only_config(parser: argparse.ArgumentParser) -> None:
+    _config_argument(parser)
+
+
+COMMANDS: dict[
+    str,
+    tuple[str, Callable[[argparse.ArgumentParser], None], Callable[[argparse.Namespace], int]],
+] = {
+    "run": ("run the pipeline for one period, queue and send the digests", _run_arguments, cmd_run),
+    "preview": (
+        "render each digest to .eml, .html and .txt files",
+        _preview_arguments,
+        cmd_preview,
+    ),
+    "lint": ("check config, hierarchy, data and recipients", _only_config, cmd_lint),
+    "demo": ("generate the invented demo scenario and run on it", _demo_arguments, cmd_demo),
+    "sink": ("run the local test mail sink (stores into a Maildir)", _sink_arguments, cmd_sink),
+    "serve": ("run the scheduled daemon", _serve_arguments, cmd_serve),
+    "status": ("last runs, next run, outbox and open alerts", _only_config, cmd_status),
+    "outbox": ("list pending and failed messages; retry one", _outbox_arguments, cmd_outbox),
+    "ack": ("acknowledge an alert: no more reminders", _ack_arguments, cmd_ack),
+}
 
 
 if __name__ == "__main__":

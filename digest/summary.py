@@ -50,3 +50,28 @@ def print_summary(
     import sys
 
     print("\n".join(summary_lines(result, paths)), file=out or sys.stdout)
+
+
+def digest_table_lines(outcome) -> list[str]:  # type: ignore[no-untyped-def]
+    """Recipients with their alert counts and where their digest went."""
+    if not outcome.digests:
+        return ["digests: none (no recipient has alerts)"]
+    delivered = {r.id: r.status for r in outcome.delivery}
+    width = max(len(p.recipient.email) for p in outcome.digests)
+    lines = [f"digests: {len(outcome.digests)}"]
+    lines.append(f"  {'recipient':<{width}}  {'unit':<24} {'alerts':>6}  delivery")
+    for p in outcome.digests:
+        unit = p.recipient.unit
+        status = delivered.get(p.outbox_id, "queued")
+        lines.append(f"  {p.recipient.email:<{width}}  {unit:<24} {len(p.alerts):>6}  {status}")
+    if outcome.unrouted is not None and len(outcome.unrouted):
+        lines.append(f"alerts that reach nobody: {len(outcome.unrouted)}")
+    if outcome.maildir is not None:
+        lines.append(f"maildir: {outcome.maildir}")
+    return lines
+
+
+def print_digest_table(outcome, out: TextIO | None = None) -> None:  # type: ignore[no-untyped-def]
+    import sys
+
+    print("\n".join(digest_table_lines(outcome)), file=out or sys.stdout)
