@@ -107,10 +107,11 @@ def _record_and_queue(
     tracked = ledger.record_alerts(
         run_id, now, result.alerts, evaluated_scope(config, result.period)
     )
-    due = due_for_digest(tracked, now, config.mail.remind_every_days)
+    due = _new_first(due_for_digest(tracked, now, config.mail.remind_every_days))
     recipients = _recipients(config, result)
     routing = route(due, recipients, result.hierarchy)
-    prepared = prepare_digests(config, result, routing.bundles, now)
+    resolved = _resolved_lookup(ledger, result, now)
+    prepared = prepare_digests(config, result, routing.bundles, now, resolved)
     items = [_outbox_entry(p, run_id) for p in prepared]
     summary = _summary_message(config, result, prepared, routing.unrouted, now)
     ledger.outbox.enqueue([*items, *([summary] if summary else [])], now)
@@ -161,10 +162,45 @@ def _recipients(config: Config, result: RunResult) -> list[Recipient]:
     return load_recipients(config.mail.recipients, result.hierarchy, programmes)
 
 
+def _new_first(due: pd.DataFrame) -> pd.DataFrame:
+    """New and reopened alerts before reminders; worst first within each (stable sort)."""
+    rank = due["reason"].map({"new": 0, "reopened": 0, "reminder": 1}).fillna(1)
+    return due.assign(_rank=rank).sort_values("_rank", kind="stable").drop(columns="_rank")
+
+
+ResolvedLookup = Callable[[Recipient], pd.DataFrame]
+
+
+def _resolved_lookup(ledger: Ledger, result: RunResult, now: datetime) -> ResolvedLookup:
+    """For a recipient: alerts in their reach resolved since their last digest."""
+    hierarchy = result.hierarchy
+
+    def lookup(recipient: Recipient) -> pd.DataFrame:
+        since = ledger.last_digest_at(recipient.email)
+        if since is None:
+            return pd.DataFrame()
+        resolved = ledger.resolved_between(since, now)
+        known = resolved["unit"].isin(hierarchy.index.keys()) if len(resolved) else []
+        resolved = resolved[known]
+        if resolved.empty:
+            return resolved
+        resolved = resolved.assign(
+            unit_index=[hierarchy.index[u] for u in resolved["unit"]], score=0.0
+        )
+        return route(resolved, [recipient], hierarchy).bundles[0].alerts
+
+    return lookup
+
+
 def prepare_digests(
-    config: Config, result: RunResult, bundles: Sequence, now: datetime
+    config: Config,
+    result: RunResult,
+    bundles: Sequence,
+    now: datetime,
+    resolved_for: ResolvedLookup | None = None,
 ) -> list[Prepared]:
-    """Render and build one message per recipient with alerts (or all-clear when asked)."""
+    """Render and build one message per recipient with something to say (alerts, or
+    resolved alerts since their last digest), or an all-clear note when configured."""
     env = make_environment(config.mail.templates)
     context = DigestContext(
         run_id=result.run_id,
@@ -176,10 +212,12 @@ def prepare_digests(
     )
     prepared = []
     for bundle in bundles:
-        if bundle.alerts.empty and not config.mail.all_clear:
-            continue
         recipient = bundle.recipient
-        rendered = render_digest(bundle.alerts, recipient, context, env)
+        resolved = resolved_for(recipient) if resolved_for else None
+        quiet = bundle.alerts.empty and (resolved is None or resolved.empty)
+        if quiet and not config.mail.all_clear:
+            continue
+        rendered = render_digest(bundle.alerts, recipient, context, env, resolved)
         outbox_id = f"{result.run_id}:digest:{recipient.email}"
         message = build_message(
             rendered,

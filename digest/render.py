@@ -204,6 +204,27 @@ class AlertView:
         )
     )
     chart: Chart | None = field(metadata=doc("Inline chart, or None."))
+    alert_id: str = field(
+        default="", metadata=doc("Ledger id to quote in `digest ack ALERT_ID` ('' in previews).")
+    )
+    status: str = field(
+        default="",
+        metadata=doc(
+            "Why it is in this digest: 'new', 'reminder' (still open) or 'again' (failed "
+            "again after being resolved); '' when unknown."
+        ),
+    )
+
+
+@dataclass(frozen=True)
+class ResolvedView:
+    """An alert from an earlier digest that no longer fails."""
+
+    alert_id: str = field(metadata=doc("Ledger id of the alert."))
+    path: str = field(metadata=doc("Unit path, joined by ' › '."))
+    check: str = field(metadata=doc("Check name."))
+    period: str = field(metadata=doc("Period of the alert."))
+    detail: str = field(metadata=doc("The sentence it carried when it was raised."))
 
 
 @dataclass(frozen=True)
@@ -253,6 +274,10 @@ class DigestView:
     admin_name: str = field(metadata=doc("Who to ask to change a subscription."))
     admin_email: str = field(metadata=doc("Their address ('' when not configured)."))
     sender_name: str = field(metadata=doc("The From name of digests."))
+    resolved: tuple[ResolvedView, ...] = field(
+        default=(),
+        metadata=doc("Alerts resolved since the recipient's last digest (corrected data)."),
+    )
 
 
 def describe_context() -> str:
@@ -327,10 +352,15 @@ def _load(env: jinja2.Environment, name: str) -> jinja2.Template:
 
 
 def render_digest(
-    bundle_alerts: pd.DataFrame, recipient: Any, context: DigestContext, env: jinja2.Environment
+    bundle_alerts: pd.DataFrame,
+    recipient: Any,
+    context: DigestContext,
+    env: jinja2.Environment,
+    resolved: pd.DataFrame | None = None,
 ) -> RenderedDigest:
-    """Render one recipient's digest from their alerts (sorted worst first)."""
-    view = build_view(bundle_alerts, recipient, context)
+    """Render one recipient's digest from their alerts (sorted worst first) and, optionally,
+    the alerts resolved since their last digest."""
+    view = build_view(bundle_alerts, recipient, context, resolved)
     variables = {f.name: getattr(view, f.name) for f in fields(view)}
     subject = clean_header(_render(env, SUBJECT, variables))
     text = fit_width(_render(env, TEXT, variables))
@@ -362,7 +392,12 @@ def _require_cautions(rendered: str, name: str, env: jinja2.Environment) -> None
         )
 
 
-def build_view(bundle: pd.DataFrame, recipient: Any, context: DigestContext) -> DigestView:
+def build_view(
+    bundle: pd.DataFrame,
+    recipient: Any,
+    context: DigestContext,
+    resolved: pd.DataFrame | None = None,
+) -> DigestView:
     """Turn a recipient's alerts into the documented template context."""
     hierarchy, mail = context.hierarchy, context.mail
     home = int(recipient.unit_index)
@@ -390,6 +425,44 @@ def build_view(bundle: pd.DataFrame, recipient: Any, context: DigestContext) -> 
         admin_name=mail.admin_name,
         admin_email=mail.admin or "",
         sender_name=mail.sender_name,
+        resolved=_resolved_views(resolved, hierarchy),
+    )
+
+
+def _resolved_views(
+    resolved: pd.DataFrame | None, hierarchy: Hierarchy
+) -> tuple[ResolvedView, ...]:
+    if resolved is None or resolved.empty:
+        return ()
+    views = []
+    for row in resolved.itertuples(index=False):
+        unit = hierarchy.index.get(str(row.unit))
+        path = (
+            PATH_SEPARATOR.join(hierarchy.path_names(unit)) if unit is not None else str(row.unit)
+        )
+        views.append(
+            ResolvedView(
+                alert_id=str(row.alert_id),
+                path=path,
+                check=_text(row.check),
+                period=_text(row.period),
+                detail=_text(getattr(row, "detail", "")),
+            )
+        )
+    return tuple(views)
+
+
+STATUS_WORDS = {"new": "new", "reminder": "reminder", "reopened": "again"}
+
+
+def _status(row: Any) -> str:
+    return STATUS_WORDS.get(_text(getattr(row, "reason", "")), "")
+
+
+def _alert_id(row: Any) -> str:
+    value = getattr(row, "alert_id", None)
+    return (
+        "" if value is None or (isinstance(value, float) and math.isnan(value)) else str(int(value))
     )
 
 
@@ -449,6 +522,8 @@ def _alert_view(row: Any, context: DigestContext, budget: _ChartBudget) -> Alert
         ),
         reporting=_reporting(row, context.hierarchy),
         chart=chart,
+        alert_id=_alert_id(row),
+        status=_status(row),
     )
 
 
