@@ -11,6 +11,7 @@ from digest.config import Config, load_config
 from digest.errors import ConfigError, DigestError
 from digest.hierarchy import Hierarchy, load_hierarchy
 from digest.loading import build_dataset, read_values_file
+from digest.render import check_templates, make_environment
 
 MAX_REJECTS_LISTED = 20
 
@@ -37,7 +38,8 @@ def _values_problems(config: Config, hierarchy: Hierarchy) -> list[str]:
     loaded = build_dataset(frame, str(config.data.values), config, hierarchy)
     rejects = loaded.rejects
     problems = [
-        f"{row.source} line {row.line}: {row.reason}"
+        f"{row.source} line {row.line}: {row.reason} "
+        f"(unit {row.unit!r}, metric {row.metric!r}, period {row.period!r}, value {row.value!r})"
         for row in rejects.head(MAX_REJECTS_LISTED).itertuples()
     ]
     if len(rejects) > MAX_REJECTS_LISTED:
@@ -65,11 +67,7 @@ def _mail_problems(config: Config, hierarchy: Hierarchy) -> list[str]:
         except ConfigError as exc:
             problems += exc.problems
     try:
-        from digest.render import check_templates
-
-        check_templates(config.mail.templates)
-    except ImportError:
-        pass
+        check_templates(make_environment(config.mail.templates))
     except ConfigError as exc:
         problems += exc.problems
     return problems
