@@ -255,6 +255,37 @@ def _only_config(parser: argparse.ArgumentParser) -> None:
     _config_argument(parser)
 
 
+def _backtest_arguments(parser: argparse.ArgumentParser) -> None:
+    _config_argument(parser)
+    parser.add_argument("--from", dest="start", required=True, metavar="P1", help="first period")
+    parser.add_argument("--to", dest="end", required=True, metavar="P2", help="last period")
+    parser.add_argument(
+        "--set",
+        dest="sets",
+        action="append",
+        default=[],
+        metavar="TARGET=V1,V2",
+        help="values to try: band.<field>=... (every band) or check.<name>.<field>=...; "
+        "repeat for a grid of every combination",
+    )
+    parser.add_argument("--truth", type=Path, metavar="FILE", help="CSV of check,unit,period")
+    parser.add_argument(
+        "--out", type=Path, metavar="DIR", help="output folder (default: [output] dir/backtest)"
+    )
+
+
+def cmd_backtest(args: argparse.Namespace) -> int:
+    from digest.backtest import format_table, parse_set, run_backtest, write_files
+
+    config = load_config(args.config)
+    overrides = [parse_set(text) for text in args.sets]
+    result = run_backtest(config, args.start, args.end, overrides, truth=args.truth)
+    print(format_table(result))
+    paths = write_files(result, args.out or config.output.dir / "backtest")
+    print("\n" + "\n".join(f"wrote {path}" for path in paths.values()))
+    return 0
+
+
 COMMANDS: dict[
     str,
     tuple[str, Callable[[argparse.ArgumentParser], None], Callable[[argparse.Namespace], int]],
@@ -272,6 +303,11 @@ COMMANDS: dict[
     "status": ("last runs, next run, outbox and open alerts", _only_config, cmd_status),
     "outbox": ("list pending and failed messages; retry one", _outbox_arguments, cmd_outbox),
     "ack": ("acknowledge an alert: no more reminders", _ack_arguments, cmd_ack),
+    "backtest": (
+        "replay past periods under several settings: alerts per digest, recall",
+        _backtest_arguments,
+        cmd_backtest,
+    ),
 }
 
 

@@ -4,19 +4,32 @@ A check whose inputs are missing for a unit and period does not apply there; ``w
 must hold (missing counts as not holding); "outside" is strict. Each alert carries the
 value, what was expected, the limits, a score (how far outside; larger is worse) and a
 short human sentence in ``detail``.
+
+On totals (levels above the capture level) two more things are said:
+
+- a ``band`` alert names the children that made most of the excess (or shortfall): each
+  child's value minus its own centre, ranked, up to three in ``contributors``;
+- a ``band`` drop or a ``bounds`` alert whose children reported below the check's
+  ``min_completeness`` (default 80 %) is labelled ``reporting_gap``.
+
+``test = "binomial"`` on ``bounds`` (a share: numerator / denominator) and ``dropout``
+alerts only when the share's Wilson score interval lies entirely outside the limits, so
+that 3 of 5 does not alarm the way 120 of 200 does.
 """
 
 from __future__ import annotations
 
 import re
-from collections.abc import Callable, Iterator
-from dataclasses import dataclass
+from collections.abc import Callable, Iterator, Mapping
+from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import pandas as pd
+from scipy.stats import norm
 
 from digest import expressions
-from digest.bands import BandArrays
+from digest.bands import METHODS, BandArrays
 from digest.config import (
     BandCheck,
     BoundsCheck,
@@ -27,7 +40,8 @@ from digest.config import (
     SilenceCheck,
 )
 from digest.hierarchy import Hierarchy
-from digest.rollup import LevelData
+from digest.periods import parse_period
+from digest.rollup import LevelData, level_totals
 
 ALERT_COLUMNS = (
     "check",
@@ -43,6 +57,7 @@ ALERT_COLUMNS = (
     "severity",
     "programme",
     "detail",
+    "contributors",
 )
 EXTRA_COLUMNS = (
     "unit_index",
@@ -53,7 +68,10 @@ EXTRA_COLUMNS = (
     "advice",
     "children_reported",
     "children_expected",
+    "reporting_gap",
 )
+TOP_CONTRIBUTORS = 3  # children named in ``contributors``
+NAMED_SHARE = 0.10  # in ``detail``, children after the first only with at least this share
 
 
 @dataclass(frozen=True)
@@ -67,6 +85,9 @@ class Context:
     column: int
     period: str
     child_word: str  # e.g. "facilities"
+    levels: Mapping[str, LevelData] = field(default_factory=dict)  # every level, for drill-down
+    periods: np.ndarray | None = None  # period ordinals of the columns, when known
+    cache: dict[Any, Any] = field(default_factory=dict)  # child centres learned on the fly
 
     def values(self, col: int | None = None) -> dict[str, np.ndarray]:
         c = self.column if col is None else col
@@ -89,6 +110,26 @@ class Found:
     detail: list[str]
     metric: str = ""
     band: str = ""
+    contributors: list[str] | None = None  # per row: the children behind a total's excess
+    gap_possible: np.ndarray | None = None  # per row: could missing reports explain it?
+
+    def take(self, keep: np.ndarray) -> Found:
+        """The rows where ``keep`` (bool, one per row) holds."""
+        return Found(
+            self.rows[keep],
+            self.value[keep],
+            self.expected[keep],
+            self.low[keep],
+            self.high[keep],
+            self.score[keep],
+            [d for d, k in zip(self.detail, keep, strict=True) if k],
+            self.metric,
+            self.band,
+            None
+            if self.contributors is None
+            else [c for c, k in zip(self.contributors, keep, strict=True) if k],
+            None if self.gap_possible is None else self.gap_possible[keep],
+        )
 
 
 def evaluate(
@@ -98,8 +139,19 @@ def evaluate(
     bands: dict[tuple[str, str], BandArrays],
     column: int,
     period: str,
+    *,
+    periods: np.ndarray | None = None,
+    cache: dict[Any, Any] | None = None,
 ) -> pd.DataFrame:
-    """Stage 3: every check at each of its levels for the period at ``column``."""
+    """Stage 3: every check at each of its levels for the period at ``column``.
+
+    ``periods`` (the period ordinals of the columns) and ``cache`` (a dict kept between
+    calls with the same bands, e.g. by a backtest) are optional; they only matter when a
+    total's children need a band that was not learned at their level.
+    """
+    if periods is None:
+        periods = _periods_from_label(period, column, config, levels)
+    cache = {} if cache is None else cache
     records: list[pd.DataFrame] = []
     for check in config.check:
         for level_name in check.levels:
@@ -111,6 +163,9 @@ def evaluate(
                 column,
                 period,
                 _child_word(hierarchy, level_name),
+                levels,
+                periods,
+                cache,
             )
             found = _apply_when(check, context, KINDS[check.kind](check, context))
             if len(found.rows):
@@ -148,12 +203,19 @@ def band_check(check: BandCheck, ctx: Context) -> Found:
     with np.errstate(divide="ignore", invalid="ignore"):
         score = np.abs(value[rows] - centre[rows]) / spread[rows]
     label = ctx.label(band_cfg.metric)
+    said, listed = _drill_down(check.band, ctx, rows, value[rows], centre[rows])
     detail = [
         f"{label}: {fmt(v)} is {'above' if v > h else 'below'} the expected range "
         f"{fmt(lo)}–{fmt(h)} (usual level {fmt(m)}, learned from {n} past values"
-        f"{_times_usual(v, m)})"
-        for v, lo, h, m, n in zip(
-            value[rows], low[rows], high[rows], centre[rows], arrays.points[rows, c], strict=True
+        f"{_times_usual(v, m)}){more}"
+        for v, lo, h, m, n, more in zip(
+            value[rows],
+            low[rows],
+            high[rows],
+            centre[rows],
+            arrays.points[rows, c],
+            said,
+            strict=True,
         )
     ]
     return Found(
@@ -166,24 +228,63 @@ def band_check(check: BandCheck, ctx: Context) -> Found:
         detail,
         metric=band_cfg.metric,
         band=check.band,
+        contributors=listed,
+        gap_possible=value[rows] < low[rows],  # missing reports can only lower a total
     )
 
 
 def bounds_check(check: BoundsCheck, ctx: Context) -> Found:
-    expr = expressions.parse(check.expr)
-    value = _full(expr.evaluate(ctx.values()), len(ctx.level.units))
+    text = check.value_expr
+    values = ctx.values()
+    n_units = len(ctx.level.units)
     lo = -np.inf if check.low is None else check.low
     hi = np.inf if check.high is None else check.high
-    outside = ~np.isnan(value) & ((value < lo) | (value > hi))
+    if check.numerator is not None and check.denominator is not None:
+        num = _full(expressions.parse(check.numerator).evaluate(values), n_units)
+        den = _full(expressions.parse(check.denominator).evaluate(values), n_units)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            # multiply before dividing: exact for counts (120 of 200 is 60.0 %)
+            value = np.where(den != 0, num * 100.0 / den, np.nan)
+    else:
+        num = den = np.full(n_units, np.nan)
+        value = _full(expressions.parse(text).evaluate(values), n_units)
+    plain = ~np.isnan(value) & ((value < lo) | (value > hi))
+    binomial = np.zeros(n_units, dtype=bool)
+    if check.test == "binomial":  # only a proper share: 0 <= numerator <= denominator
+        binomial = (den > 0) & (num >= 0) & (num <= den)
+    ci_low, ci_high = wilson_interval(
+        np.where(binomial, num, 0.0), np.where(binomial, den, 1.0), check.confidence
+    )
+    ci_low, ci_high = ci_low * 100.0, ci_high * 100.0
+    outside = np.where(binomial, (ci_low > hi) | (ci_high < lo), plain)
     rows = np.flatnonzero(outside)
     v = value[rows]
     limit = np.where(v > hi, hi, lo)
-    score = np.abs(v - limit) / np.maximum(np.abs(limit), 1.0)
-    detail = [
-        f"{check.expr} = {fmt(x)}, {'above the upper' if x > hi else 'below the lower'} "
-        f"limit {fmt(hi if x > hi else lo)}"
-        for x in v
-    ]
+    nearest = np.where(v > hi, ci_low[rows], ci_high[rows])
+    gap = np.where(binomial[rows], nearest, v)  # how far the (interval) is beyond the limit
+    score = np.abs(gap - limit) / np.maximum(np.abs(limit), 1.0)
+    detail = []
+    for r, x in zip(rows, v, strict=True):
+        above = x > hi
+        if binomial[r]:
+            detail.append(
+                f"{_describe(check.numerator or '', ctx)}: {fmt(x)} % of {fmt(den[r])}, "
+                f"{'above' if above else 'below'} {fmt(hi if above else lo)} % with "
+                f"{_percent(check.confidence)} confidence (Wilson interval "
+                f"{ci_low[r]:.1f}–{ci_high[r]:.1f} %)"
+            )
+        else:
+            detail.append(
+                f"{text} = {fmt(x)}, {'above the upper' if above else 'below the lower'} "
+                f"limit {fmt(hi if above else lo)}"
+                + (
+                    " (numerator above denominator: not a share)"
+                    if check.test == "binomial" and num[r] > den[r]
+                    else ""
+                )
+            )
+    # a single summed metric can only fall through missing reports; a ratio either way
+    total = text.strip() in ctx.level.metrics
     return Found(
         rows,
         v,
@@ -192,7 +293,8 @@ def bounds_check(check: BoundsCheck, ctx: Context) -> Found:
         np.full(len(rows), _num(check.high)),
         score,
         detail,
-        metric=_primary(check.expr, ctx),
+        metric=_primary(text, ctx),
+        gap_possible=(v < lo) if total else np.ones(len(rows), dtype=bool),
     )
 
 
@@ -204,17 +306,32 @@ def dropout_check(check: DropoutCheck, ctx: Context) -> Found:
         dropout = np.where(first > 0, (first - last) * 100.0 / first, np.nan)
     lo = -np.inf if check.low is None else check.low
     hi = np.inf if check.high is None else check.high
-    outside = ~np.isnan(dropout) & ((dropout < lo) | (dropout > hi))
+    plain = ~np.isnan(dropout) & ((dropout < lo) | (dropout > hi))
+    binomial = np.zeros(len(first), dtype=bool)
+    if check.test == "binomial":  # the share of non-completers; negative dropout stays plain
+        binomial = (first > 0) & (last >= 0) & (last <= first)
+    ci_low, ci_high = wilson_interval(
+        np.where(binomial, first - last, 0.0), np.where(binomial, first, 1.0), check.confidence
+    )
+    ci_low, ci_high = ci_low * 100.0, ci_high * 100.0
+    outside = np.where(binomial, (ci_low > hi) | (ci_high < lo), plain)
     rows = np.flatnonzero(outside)
     d = dropout[rows]
     limit = np.where(d > hi, hi, lo)
-    score = np.abs(d - limit) / 10.0
+    nearest = np.where(binomial[rows], np.where(d > hi, ci_low[rows], ci_high[rows]), d)
+    score = np.abs(nearest - limit) / 10.0
     detail = [
         f"dropout from {ctx.label(check.first)} ({fmt(f)}) to {ctx.label(check.last)} "
         f"({fmt(la)}) is {x:.1f} %, "
         + (f"above {fmt(hi)} %" if x > hi else f"below {fmt(lo)} %")
+        + (
+            f" with {_percent(check.confidence)} confidence (Wilson interval "
+            f"{ci_low[r]:.1f}–{ci_high[r]:.1f} %)"
+            if binomial[r]
+            else ""
+        )
         + (" (more last doses than first doses)" if x < 0 else "")
-        for x, f, la in zip(d, first[rows], last[rows], strict=True)
+        for r, x, f, la in zip(rows, d, first[rows], last[rows], strict=True)
     ]
     return Found(
         rows,
@@ -312,18 +429,7 @@ def _apply_when(check: Check, ctx: Context, found: Found) -> Found:
     if check.when is None or not len(found.rows):
         return found
     holds = _full(expressions.parse(check.when).evaluate(ctx.values()), len(ctx.level.units))
-    keep = holds[found.rows] == 1.0
-    return Found(
-        found.rows[keep],
-        found.value[keep],
-        found.expected[keep],
-        found.low[keep],
-        found.high[keep],
-        found.score[keep],
-        [d for d, k in zip(found.detail, keep, strict=True) if k],
-        found.metric,
-        found.band,
-    )
+    return found.take(holds[found.rows] == 1.0)
 
 
 def _frame(check: Check, ctx: Context, found: Found) -> pd.DataFrame:
@@ -332,14 +438,24 @@ def _frame(check: Check, ctx: Context, found: Found) -> pd.DataFrame:
     at_capture = ctx.level.level == h.capture_level
     children_reported = np.full(len(units), np.nan)
     children_expected = np.full(len(units), np.nan)
+    gap = np.zeros(len(units), dtype=bool)
     detail = list(found.detail)
     if not at_capture and found.metric:
         children_reported = ctx.level.metrics[found.metric].reported[found.rows, ctx.column]
         children_expected = ctx.level.expected[found.rows, ctx.column]
+        gap = reporting_gap(
+            children_reported,
+            children_expected,
+            getattr(check, "min_completeness", None),
+            found.gap_possible,
+        )
         detail = [
-            f"{d}; {r} of {e} {ctx.child_word} reported"
-            for d, r, e in zip(detail, children_reported, children_expected, strict=True)
+            f"Probably a reporting gap ({r} of {e} {ctx.child_word} reported): {d}"
+            if g
+            else f"{d}; {r} of {e} {ctx.child_word} reported"
+            for d, r, e, g in zip(detail, children_reported, children_expected, gap, strict=True)
         ]
+    contributors = found.contributors or [""] * len(units)
     return pd.DataFrame(
         {
             "check": check.name,
@@ -355,6 +471,7 @@ def _frame(check: Check, ctx: Context, found: Found) -> pd.DataFrame:
             "severity": check.severity,
             "programme": check.programme,
             "detail": detail,
+            "contributors": contributors,
             "unit_index": units,
             "score": found.score.astype(float),
             "metric": found.metric,
@@ -363,8 +480,151 @@ def _frame(check: Check, ctx: Context, found: Found) -> pd.DataFrame:
             "advice": check.advice or "",
             "children_reported": children_reported.astype(float),
             "children_expected": children_expected.astype(float),
+            "reporting_gap": gap,
         }
     )
+
+
+def wilson_interval(
+    successes: np.ndarray | float, trials: np.ndarray | float, confidence: float = 0.99
+) -> tuple[np.ndarray, np.ndarray]:
+    """Two-sided Wilson score interval of the proportion successes / trials, elementwise.
+
+    centre = (p + z²/2n) / (1 + z²/n), half-width = z / (1 + z²/n) · √(p(1 − p)/n + z²/4n²)
+    with z the normal quantile of 1 − (1 − confidence)/2 (Wilson 1927); clipped to [0, 1]
+    against rounding. NaN where trials is not positive.
+    """
+    x = np.asarray(successes, dtype=float)
+    n = np.asarray(trials, dtype=float)
+    z = float(norm.ppf(1.0 - (1.0 - confidence) / 2.0))
+    z2 = z * z
+    with np.errstate(divide="ignore", invalid="ignore"):
+        n = np.where(n > 0, n, np.nan)
+        p = x / n
+        denominator = 1.0 + z2 / n
+        centre = (p + z2 / (2.0 * n)) / denominator
+        half = z / denominator * np.sqrt(p * (1.0 - p) / n + z2 / (4.0 * n * n))
+    return np.clip(centre - half, 0.0, 1.0), np.clip(centre + half, 0.0, 1.0)
+
+
+def reporting_gap(
+    reported: np.ndarray,
+    expected: np.ndarray,
+    min_completeness: float | None,
+    possible: np.ndarray | None = None,
+) -> np.ndarray:
+    """Whether fewer than ``min_completeness`` of the expected children reported.
+
+    Completeness is reported ÷ expected (Σ received ÷ Σ expected); strict: exactly 80 %
+    meets an 80 % target. ``possible`` limits the label to alerts a gap could explain.
+    """
+    reported = np.asarray(reported, dtype=float)
+    expected = np.asarray(expected, dtype=float)
+    if min_completeness is None:
+        return np.zeros(reported.shape, dtype=bool)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        gap = (expected > 0) & (reported / expected < min_completeness)
+    return gap if possible is None else gap & np.asarray(possible, dtype=bool)
+
+
+def _drill_down(
+    band_name: str, ctx: Context, rows: np.ndarray, value: np.ndarray, centre: np.ndarray
+) -> tuple[list[str], list[str]]:
+    """For totals out of band: the children behind the excess, for detail and contributors.
+
+    A child's contribution is its value minus its own centre (a child that did not report
+    adds nothing to the total, so it counts as 0 minus its centre). Children pulling the
+    way of the excess are ranked; a share is the child's part of their sum.
+    """
+    n = len(rows)
+    said, listed = [""] * n, [""] * n
+    h = ctx.hierarchy
+    index = h.levels.index(ctx.level.level)
+    if not n or index + 1 >= len(h.levels):
+        return said, listed
+    found = _child_series(band_name, h.levels[index + 1], ctx)
+    if found is None:
+        return said, listed
+    child_units, child_value, child_centre = found
+    if not len(child_units):
+        return said, listed
+    for i, (row, v, m) in enumerate(zip(rows, value, centre, strict=True)):
+        kids = np.asarray(h.children.get(int(ctx.level.units[row]), []), dtype=np.int64)
+        pos = np.minimum(np.searchsorted(child_units, kids), len(child_units) - 1)
+        same = child_units[pos] == kids
+        kids, pos = kids[same], pos[same]
+        sign = 1.0 if v > m else -1.0
+        missing = np.isnan(child_value[pos])
+        toward = sign * (np.where(missing, 0.0, child_value[pos]) - child_centre[pos])
+        usable = np.flatnonzero(~np.isnan(toward) & (toward > 0))
+        if not len(usable):
+            continue
+        total = toward[usable].sum()
+        top = usable[np.lexsort((kids[usable], -toward[usable]))][:TOP_CONTRIBUTORS]
+        shares = toward[top] / total
+        listed[i] = "; ".join(
+            f"{h.ids[kids[j]]} {h.names[kids[j]]} {sign * toward[j]:+.0f} "
+            f"({s:.0%}{', no report' if missing[j] else ''})"
+            for j, s in zip(top, shares, strict=True)
+        )
+        named = [
+            f"{h.names[kids[j]]} ({sign * toward[j]:+,.0f}, {s * 100:.0f} %"
+            f"{', no report' if missing[j] else ''})"
+            for k, (j, s) in enumerate(zip(top, shares, strict=True))
+            if k == 0 or s >= NAMED_SHARE
+        ]
+        word = "excess" if sign > 0 else "shortfall"
+        lead = f"most of the {word} from" if shares[0] >= 0.5 else f"the {word} mainly from"
+        said[i] = f"; {lead} {', '.join(named)}"
+    return said, listed
+
+
+def _child_series(
+    band_name: str, child_level: str, ctx: Context
+) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
+    """Child units, their values and their own centres at the evaluated column.
+
+    The centre is the band's own at the child level when it is learned there; otherwise
+    the same method and settings learn it from the children's own series.
+    """
+    band = ctx.config.band_named(band_name)
+    h = ctx.hierarchy
+    c = ctx.column
+    data = ctx.levels.get(child_level)
+    if data is not None and band.metric in data.metrics:
+        units, series = data.units, data.metrics[band.metric].values
+    else:
+        capture = ctx.levels.get(h.capture_level)
+        if capture is None or band.metric not in capture.metrics:
+            return None
+        totals = level_totals(capture.metrics[band.metric].values, h, capture.units, child_level)
+        units, series = h.at_level(child_level), totals.values
+    learned = ctx.bands.get((band_name, child_level))
+    if learned is not None:
+        return units, series[:, c], learned.centre[:, c]
+    key = ("child centre", band.model_dump_json(), child_level, series.shape)
+    if key not in ctx.cache:
+        method = METHODS[band.method]
+        ctx.cache[key] = method(
+            series, band, periods=ctx.periods, kind=ctx.config.data.period
+        ).centre
+    return units, series[:, c], ctx.cache[key][:, c]
+
+
+def _periods_from_label(
+    period: str, column: int, config: Config, levels: Mapping[str, LevelData]
+) -> np.ndarray | None:
+    """The period ordinals of every column, from the evaluated period's label."""
+    try:
+        ordinal = parse_period(period, config.data.period)
+    except ValueError:
+        return None
+    width = next(iter(levels.values())).expected.shape[1] if levels else column + 1
+    return np.arange(ordinal - column, ordinal - column + width)
+
+
+def _percent(share: float) -> str:
+    return f"{share * 100:g} %"
 
 
 def _nothing() -> Found:

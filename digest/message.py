@@ -26,25 +26,12 @@ from typing import TYPE_CHECKING
 
 import pandas as pd
 
+from digest.evaluate import ALERT_COLUMNS
+
 if TYPE_CHECKING:
     from digest.config import MailConfig
     from digest.render import RenderedDigest
 
-ALERT_COLUMNS: tuple[str, ...] = (
-    "check",
-    "kind",
-    "unit",
-    "unit_name",
-    "level",
-    "period",
-    "value",
-    "expected",
-    "low",
-    "high",
-    "severity",
-    "programme",
-    "detail",
-)
 CSV_ENCODING = "utf-8-sig"  # a BOM, so spreadsheet programs read unit names as UTF-8
 
 _UNSAFE_ID = re.compile(r"[^A-Za-z0-9.-]+")
