@@ -74,8 +74,9 @@ def run_job(
     preview_dir: Path | None = None,
     progress: Progress | None = None,
     sleep: Callable[[float], None] | None = None,
+    run_id: str | None = None,
 ) -> JobOutcome:
-    run_id = new_run_id(now)
+    run_id = run_id or new_run_id(now)  # the daemon passes one, to log it on every line
     out_dir = out_dir or config.output.dir
     if mode != "relay":
         return _rehearse(config, run_id, now, mode, as_of, out_dir, preview_dir, progress)
@@ -85,7 +86,7 @@ def run_job(
             return JobOutcome(run_id, "skipped")
         try:
             outcome = _record_and_queue(config, ledger, run_id, now, as_of, out_dir, progress)
-        except DigestError as exc:
+        except Exception as exc:  # any failure, expected or not: never leave it 'running'
             _fail(config, ledger, run_id, now, exc)
             deliver_outbox(config, ledger, now, sleep=sleep)
             raise
@@ -131,10 +132,13 @@ def _record_and_queue(
     return JobOutcome(run_id, "succeeded", result, prepared, routing.unrouted, files=files)
 
 
-def _fail(config: Config, ledger: Ledger, run_id: str, now: datetime, exc: DigestError) -> None:
-    stage = exc.stage if isinstance(exc, StageError) else "load"
-    ledger.finish_run(run_id, now, "failed", None, {}, {}, error=str(exc))
-    log.error("run %s failed: %s", run_id, exc)
+def _fail(config: Config, ledger: Ledger, run_id: str, now: datetime, exc: Exception) -> None:
+    if isinstance(exc, DigestError):
+        stage, error = (exc.stage if isinstance(exc, StageError) else "load"), str(exc)
+    else:  # a bug or the system (disk, database) after the pipeline: outputs, ledger, mail
+        stage, error = "digests", f"{type(exc).__name__}: {exc}"
+    ledger.finish_run(run_id, now, "failed", None, {}, {}, error=error)
+    log.error("run %s failed: %s", run_id, error)
     alarm = admin_message(
         config.mail,
         outbox_id=f"{run_id}:alarm:stage",
@@ -143,7 +147,7 @@ def _fail(config: Config, ledger: Ledger, run_id: str, now: datetime, exc: Diges
         subject=f"digest alarm: run {run_id} failed at stage {stage}",
         body=(
             f"The nightly run {run_id} failed at stage '{stage}'. The stages after it did not "
-            f"run and no digests were queued.\n\n{exc}\n\nFix the cause, then run "
+            f"run and no digests were queued.\n\n{error}\n\nFix the cause, then run "
             "`digest run --config ...` by hand or wait for the next scheduled run."
         ),
         now=now,

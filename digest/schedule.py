@@ -9,7 +9,7 @@ Every function takes "now" as an argument; only the daemon reads the clock.
 
 from __future__ import annotations
 
-from datetime import datetime, timedelta
+from datetime import UTC, datetime, timedelta
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from apscheduler.triggers.cron import CronTrigger
@@ -91,7 +91,9 @@ def _day_number(text: str) -> int:
 
 def next_fire(trigger: CronTrigger, after: datetime) -> datetime | None:
     """The first scheduled time strictly after ``after``."""
-    return trigger.get_next_fire_time(None, after + timedelta(microseconds=1))
+    # step in UTC: wall-clock arithmetic inside a repeated DST hour loses the fold and would
+    # find the same slot again
+    return trigger.get_next_fire_time(None, after.astimezone(UTC) + timedelta(microseconds=1))
 
 
 def missed_slot(

@@ -6,6 +6,7 @@ Kept small and generic on purpose: other test modules may use these too.
 from __future__ import annotations
 
 import csv
+import logging
 import shutil
 import tomllib
 from collections.abc import Callable, Sequence
@@ -75,3 +76,15 @@ def example_raw() -> dict[str, Any]:
     """The issue's example configuration as a fresh dict, to edit and pass to config_from_dict."""
     with EXAMPLE_TOML.open("rb") as fh:
         return tomllib.load(fh)
+
+
+@pytest.fixture(autouse=True)
+def _restore_logging():  # type: ignore[no-untyped-def]
+    """Tests that call the CLI configure logging; put the root logger back afterwards."""
+    root = logging.getLogger()
+    handlers, level = list(root.handlers), root.level
+    yield
+    for handler in list(root.handlers):
+        if handler not in handlers:
+            root.removeHandler(handler)
+    root.setLevel(level)
