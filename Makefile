@@ -4,7 +4,7 @@ VENV   ?= .venv
 BIN     = $(VENV)/bin
 STAMP   = $(VENV)/.installed
 
-.PHONY: demo test lint bench clean
+.PHONY: demo demo-postgres test lint bench clean
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -14,6 +14,13 @@ $(STAMP): pyproject.toml
 
 demo: $(STAMP)
 	$(BIN)/digest demo --dir demo
+
+# The demo read from the local PostgreSQL server: tables demo_units and demo_values of the
+# database test on 127.0.0.1:5432 (another server: edit the URLs in demo/config-postgres.toml
+# and give load_postgres.py --url).
+demo-postgres: $(STAMP)
+	$(BIN)/python demo/load_postgres.py
+	$(BIN)/digest run --dry-run --config demo/config-postgres.toml
 
 test: $(STAMP)
 	$(BIN)/ruff check digest tests bench

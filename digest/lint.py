@@ -7,10 +7,11 @@ from __future__ import annotations
 
 from pathlib import Path
 
+from digest import sources
 from digest.config import Config, load_config
 from digest.errors import ConfigError, DigestError
-from digest.hierarchy import Hierarchy, load_hierarchy
-from digest.loading import build_dataset, read_values_file
+from digest.hierarchy import Hierarchy
+from digest.loading import assemble, check_rows
 from digest.render import check_templates, make_environment
 
 MAX_REJECTS_LISTED = 20
@@ -22,20 +23,24 @@ def lint(config_path: Path) -> list[str]:
     except ConfigError as exc:
         return exc.problems
     try:
-        hierarchy = load_hierarchy(config.data.units, config.data.levels)
+        hierarchy = sources.load_units(config)
     except ConfigError as exc:
         return exc.problems
+    except DigestError as exc:  # e.g. the units query cannot run
+        return [str(exc)]
     problems = _values_problems(config, hierarchy)
     problems += _mail_problems(config, hierarchy)
     return problems
 
 
 def _values_problems(config: Config, hierarchy: Hierarchy) -> list[str]:
+    label = sources.source_label(config.data.values, "values")
     try:
-        frame = read_values_file(config.data.values)
+        parts = [check_rows(f, src, config, hierarchy) for src, f in sources.value_chunks(config)]
+        parts += sources.records_parts(config, hierarchy)
     except DigestError as exc:
         return [str(exc)]
-    loaded = build_dataset(frame, str(config.data.values), config, hierarchy)
+    loaded = assemble(parts, config, hierarchy)
     rejects = loaded.rejects
     problems = [
         f"{row.source} line {row.line}: {row.reason} "
@@ -44,13 +49,13 @@ def _values_problems(config: Config, hierarchy: Hierarchy) -> list[str]:
     ]
     if len(rejects) > MAX_REJECTS_LISTED:
         problems.append(
-            f"{config.data.values}: ... and {len(rejects) - MAX_REJECTS_LISTED} more rejected "
+            f"{label}: ... and {len(rejects) - MAX_REJECTS_LISTED} more rejected "
             "rows; `digest run` writes them all to rejects.csv"
         )
     share = loaded.stats.reject_share
     if share > config.data.max_reject_share:
         problems.append(
-            f"{config.data.values}: {share:.1%} of rows rejected, above max_reject_share "
+            f"{label}: {share:.1%} of rows rejected, above max_reject_share "
             f"{config.data.max_reject_share:.1%}: a run would fail"
         )
     return problems

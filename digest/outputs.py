@@ -1,7 +1,9 @@
 """Write a run's files: alerts.csv, bands.parquet and rejects.csv.
 
 Every file is written under a temporary name in the same folder and renamed into place,
-so a reader never sees half a file.
+so a reader never sees half a file. With ``[output] table``, the bands and the totals per
+level are also written to a database, replacing that period's rows in one transaction
+(:func:`digest.sources.write_back`).
 """
 
 from __future__ import annotations
@@ -54,4 +56,8 @@ def write_outputs(result: RunResult, out_dir: Path) -> dict[str, Path]:
     write_atomic(
         paths["rejects"], lambda fh: rejects.to_csv(fh, index=False, lineterminator="\r\n")
     )
+    if result.config.output.table is not None:
+        from digest.sources import write_back
+
+        write_back(result, result.config.output.table)
     return paths

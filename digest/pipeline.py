@@ -13,19 +13,21 @@ from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from datetime import datetime
-from typing import TypeVar
+from typing import Protocol, TypeVar
 
 import numpy as np
 import pandas as pd
 
-from digest.bands import BandArrays, derive, learn_bands
+from digest import bands as bands_stage
+from digest import evaluate as evaluate_stage
+from digest import rollup as rollup_stage
+from digest.bands import BandArrays
 from digest.config import Config
 from digest.errors import DataError, DigestError, StageError
-from digest.evaluate import evaluate
-from digest.hierarchy import Hierarchy, load_hierarchy
+from digest.hierarchy import Hierarchy
 from digest.loading import Dataset, Loaded, load_values
 from digest.periods import format_period, parse_period
-from digest.rollup import LevelData, rollup
+from digest.rollup import LevelData
 
 STAGES = ("load", "bands", "rollup", "evaluate")
 T = TypeVar("T")
@@ -116,6 +118,105 @@ class RunResult:
             )
         return pd.concat(parts, ignore_index=True)
 
+    def totals_frame(self) -> pd.DataFrame:
+        """Every level's totals in the evaluated period: value, children reported and expected.
+
+        One row per unit and metric where a value was reported or a report was expected.
+        """
+        parts = []
+        h = self.hierarchy
+        c = self.column
+        ids = np.array(h.ids, dtype=object)
+        for level in self.config.data.levels:
+            data = self.levels[level]
+            expected = data.expected[:, c]
+            for metric, totals in data.metrics.items():
+                reported = totals.reported[:, c]
+                keep = (reported > 0) | (expected > 0)
+                parts.append(
+                    pd.DataFrame(
+                        {
+                            "unit": ids[data.units[keep]],
+                            "level": level,
+                            "metric": metric,
+                            "period": self.period,
+                            "value": totals.values[keep, c],
+                            "reported": reported[keep],
+                            "expected": expected[keep],
+                        }
+                    )
+                )
+        columns = ["unit", "level", "metric", "period", "value", "reported", "expected"]
+        if not parts:
+            return pd.DataFrame(columns=columns)
+        return pd.concat(parts, ignore_index=True)
+
+
+class Engine(Protocol):
+    """Where stages 1-3 run. Every engine gives the same results as :class:`LocalEngine`."""
+
+    def derive(self, config: Config, raw: dict[str, np.ndarray]) -> dict[str, np.ndarray]: ...
+
+    def learn_bands(
+        self, config: Config, dataset: Dataset, series: dict[str, np.ndarray]
+    ) -> dict[tuple[str, str], BandArrays]: ...
+
+    def rollup(
+        self, dataset: Dataset, series: dict[str, np.ndarray], levels: list[str]
+    ) -> dict[str, LevelData]: ...
+
+    def evaluate(
+        self,
+        config: Config,
+        hierarchy: Hierarchy,
+        levels: dict[str, LevelData],
+        bands: dict[tuple[str, str], BandArrays],
+        column: int,
+        period: str,
+    ) -> pd.DataFrame: ...
+
+    def close(self) -> None: ...
+
+
+class LocalEngine:
+    """numpy and pandas in this process (the default)."""
+
+    def derive(self, config: Config, raw: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+        return bands_stage.derive(config, raw)
+
+    def learn_bands(
+        self, config: Config, dataset: Dataset, series: dict[str, np.ndarray]
+    ) -> dict[tuple[str, str], BandArrays]:
+        return bands_stage.learn_bands(config, dataset, series)
+
+    def rollup(
+        self, dataset: Dataset, series: dict[str, np.ndarray], levels: list[str]
+    ) -> dict[str, LevelData]:
+        return rollup_stage.rollup(dataset, series, levels)
+
+    def evaluate(
+        self,
+        config: Config,
+        hierarchy: Hierarchy,
+        levels: dict[str, LevelData],
+        bands: dict[tuple[str, str], BandArrays],
+        column: int,
+        period: str,
+    ) -> pd.DataFrame:
+        return evaluate_stage.evaluate(config, hierarchy, levels, bands, column, period)
+
+    def close(self) -> None:
+        pass
+
+
+def open_engine(config: Config) -> Engine:
+    """The engine named by ``[engine] kind``: the one place that chooses."""
+    if config.engine.kind == "dask":
+        from digest.engine_dask import DaskEngine
+
+        return DaskEngine(config.engine)
+    return LocalEngine()
+
 
 def new_run_id(now: datetime) -> str:
     return f"{now:%Y%m%dT%H%M%S}-{secrets.token_hex(2)}"
@@ -127,22 +228,42 @@ def run_pipeline(
     run_id: str,
     as_of: str | None = None,
     progress: Progress | None = None,
+    engine: Engine | None = None,
 ) -> RunResult:
-    """Load the data and run bands, rollup and evaluate for one period."""
+    """Load the data and run bands, rollup and evaluate for one period.
+
+    ``engine``: where the stages run; by default the one ``[engine]`` names, opened for
+    this run and closed after it (a caller passing its own engine closes it itself).
+    """
+    own = engine is None
+    if engine is None:
+        engine = open_engine(config)
+    try:
+        return _run(config, engine, run_id, as_of, progress)
+    finally:
+        if own:
+            engine.close()
+
+
+def _run(
+    config: Config, engine: Engine, run_id: str, as_of: str | None, progress: Progress | None
+) -> RunResult:
+    from digest.sources import load_units
+
     timings: dict[str, float] = {}
     with _stage("load", timings, progress):
-        hierarchy = load_hierarchy(config.data.units, config.data.levels)
+        hierarchy = load_units(config)
         loaded = load_values(config, hierarchy)
         loaded, column = _up_to(loaded, as_of, config)
     dataset = loaded.dataset
     period = format_period(int(dataset.periods[column]), dataset.kind)
     with _stage("bands", timings, progress):
-        series = derive(config, dataset.values)
-        bands = learn_bands(config, dataset, series)
+        series = engine.derive(config, dataset.values)
+        bands = engine.learn_bands(config, dataset, series)
     with _stage("rollup", timings, progress):
-        levels = rollup(dataset, series, config.data.levels)
+        levels = engine.rollup(dataset, series, config.data.levels)
     with _stage("evaluate", timings, progress):
-        alerts = evaluate(config, hierarchy, levels, bands, column, period)
+        alerts = engine.evaluate(config, hierarchy, levels, bands, column, period)
     return RunResult(run_id, config, period, column, loaded, series, bands, levels, alerts, timings)
 
 
@@ -150,7 +271,9 @@ def _up_to(loaded: Loaded, as_of: str | None, config: Config) -> tuple[Loaded, i
     """Drop periods after ``as_of`` (default: the latest with data); return its column."""
     dataset = loaded.dataset
     if not len(dataset.periods):
-        raise DataError(f"{config.data.values}: no valid rows to evaluate")
+        from digest.sources import source_label
+
+        raise DataError(f"{source_label(config.data.values, 'values')}: no valid rows to evaluate")
     if as_of is None:
         return loaded, len(dataset.periods) - 1
     try:
