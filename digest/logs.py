@@ -60,7 +60,6 @@ def configure_logging(verbose: int = 0, fmt: str = "text") -> None:
     root = logging.getLogger()
     for old in list(root.handlers):
         root.removeHandler(old)
-    handler.setLevel(level)
     root.addHandler(handler)
     root.setLevel(level)
     logging.getLogger("mail.log").setLevel(logging.ERROR)  # aiosmtpd's own chatter
