@@ -18,9 +18,12 @@ from pydantic import (
     AfterValidator,
     BaseModel,
     ConfigDict,
+    Discriminator,
     Field,
+    Tag,
     ValidationError,
     field_validator,
+    model_validator,
 )
 
 from digest import expressions
@@ -62,15 +65,110 @@ class Strict(BaseModel):
     model_config = ConfigDict(extra="forbid", populate_by_name=True, frozen=True)
 
 
+# ---- data sources: a file, or a query on an SQL database --------------------------------
+
+_TABLE_NAME = r"^[A-Za-z_][A-Za-z0-9_]{0,62}(\.[A-Za-z_][A-Za-z0-9_]{0,62})?$"
+
+
+class DatabaseConfig(Strict):
+    """An SQL database reached through SQLAlchemy; the password comes from the environment."""
+
+    url: Line = Field(
+        description="SQLAlchemy URL without a password, e.g. postgresql+psycopg://digest@db:5432/hmis "
+        "or sqlite:///data.sqlite (relative SQLite paths follow the config file)."
+    )
+    password_env: Code | None = Field(
+        None, description="Name of the environment variable holding the database password."
+    )
+
+    @model_validator(mode="before")
+    @classmethod
+    def _no_password_in_url(cls, raw: Any) -> Any:
+        # checked on the whole table so that a refused URL is never echoed in the message
+        if isinstance(raw, dict) and isinstance(raw.get("url"), str):
+            from sqlalchemy.engine import make_url
+            from sqlalchemy.exc import ArgumentError
+
+            try:
+                url = make_url(raw["url"])
+            except ArgumentError:
+                raise ValueError(
+                    "url: not an SQLAlchemy URL; expected e.g. "
+                    "postgresql+psycopg://user@host:5432/database or sqlite:///file.sqlite"
+                ) from None
+            if url.password is not None:
+                raise ValueError(
+                    "url: must not contain a password; put the password in an environment "
+                    "variable and give its name as password_env"
+                )
+        return raw
+
+    def sqlalchemy_url(self) -> Any:
+        """The URL with the password from ``password_env`` filled in (never log it)."""
+        from sqlalchemy.engine import make_url
+
+        url = make_url(self.url)
+        if self.password_env is None:
+            return url
+        value = os.environ.get(self.password_env)
+        if value is None:
+            raise ConfigError(
+                f"{self.shown_url}: environment variable {self.password_env} (password_env) "
+                "is not set; export it before running"
+            )
+        return url.set(password=value)
+
+    @property
+    def shown_url(self) -> str:
+        from sqlalchemy.engine import make_url
+
+        return make_url(self.url).render_as_string(hide_password=True)
+
+
+class TableSource(DatabaseConfig):
+    """Rows of a query: ``{ url = ..., query = "SELECT ...", password_env = ... }``."""
+
+    query: str = Field(description="A SELECT (or WITH ... SELECT) returning the source's columns.")
+
+    @field_validator("query")
+    @classmethod
+    def _select(cls, value: str) -> str:
+        words = value.split(None, 1)
+        if not words or words[0].lower() not in {"select", "with"}:
+            raise ValueError("must be a query starting with SELECT or WITH")
+        return value
+
+
+def _source_kind(value: Any) -> str:
+    return "table" if isinstance(value, dict | TableSource) else "path"
+
+
+Source = Annotated[
+    Annotated[Path, Tag("path")] | Annotated[TableSource, Tag("table")],
+    Discriminator(_source_kind),
+]
+
+
 class DataConfig(Strict):
-    units: Path = Field(description="CSV of the hierarchy: id,name,parent,level[,opened,closed].")
-    values: Path = Field(description="Reported values in long form (CSV or Parquet).")
+    units: Source = Field(
+        description="The hierarchy: a CSV file id,name,parent,level[,opened,closed], or a table "
+        "{ url, query, password_env } whose query returns those columns."
+    )
+    values: Source = Field(
+        description="Reported values in long form: a CSV or Parquet file, or a table "
+        "{ url, query, password_env } whose query returns unit, metric, period, value."
+    )
     period: PeriodKind = Field("month", description="Period type: month (2026-10) or week.")
     levels: list[Code] = Field(
         description="Level names, top first; values are captured at the last one.", min_length=1
     )
     max_reject_share: float = Field(
         0.05, ge=0, le=1, description="The run fails when more than this share of rows is rejected."
+    )
+    chunk_rows: int = Field(
+        200_000,
+        ge=1,
+        description="Rows read at a time from a query or a Parquet file (memory stays bounded).",
     )
 
     @field_validator("levels")
@@ -79,6 +177,56 @@ class DataConfig(Strict):
         if len(set(levels)) != len(levels):
             raise ValueError("level names must be distinct")
         return levels
+
+
+class CountRule(Strict):
+    metric: Code = Field(description="Raw metric that the matching records are counted into.")
+    where: str | None = Field(
+        None,
+        description='Condition on record columns, e.g. "age_years < 5 and test_result == '
+        "'positive'\"; without it every record counts.",
+    )
+
+    @field_validator("where")
+    @classmethod
+    def _safe_where(cls, value: str | None) -> str | None:
+        if value is None:
+            return value
+        from digest.sources import WhereError, parse_where
+
+        try:
+            parse_where(value)
+        except WhereError as exc:
+            raise ValueError(str(exc)) from None
+        return value
+
+
+class RecordsConfig(Strict):
+    """Individual records (one row per case or visit), counted per unit, metric and period."""
+
+    name: Code = Field(description="Name of the source, shown in rejects as records:<name>.")
+    path: Path | None = Field(None, description="CSV or Parquet file of the records.")
+    table: TableSource | None = Field(None, description="Or a query: { url, query, password_env }.")
+    unit: str = Field("unit", min_length=1, description="Column holding the capture-level unit id.")
+    date: str | None = Field(
+        None, description="Column of ISO dates; a record counts in the period containing it."
+    )
+    period: str | None = Field(
+        None, description="Or a column of ISO periods (2026-10 or 2026-W42)."
+    )
+    count: list[CountRule] = Field(min_length=1, description="What to count: [[records.count]].")
+
+    @model_validator(mode="after")
+    def _one_source_one_time(self) -> RecordsConfig:
+        if (self.path is None) == (self.table is None):
+            raise ValueError(
+                "give either path (a CSV or Parquet file) or table = { url = ..., query = ... }"
+            )
+        if (self.date is None) == (self.period is None):
+            raise ValueError(
+                "give either date (a column of ISO dates) or period (a column of ISO periods)"
+            )
+        return self
 
 
 class MetricConfig(Strict):
@@ -93,17 +241,84 @@ class DerivedConfig(Strict):
     expr: str = Field(description="Expression over metric codes, computed per capture unit.")
 
 
+BandMethodName = Literal["mean_sd", "median_mad", "seasonal", "poisson"]
+# k when the file does not give one: 3 SD (mean_sd), the modified z-score cut-off 3.5
+# (median_mad, Iglewicz & Hoaglin 1993), 2 SD of historical limits (seasonal, Stroup et
+# al. 1989); poisson does not read k (alpha sets its width).
+BAND_DEFAULT_K: dict[str, float] = {"mean_sd": 3.0, "median_mad": 3.5, "seasonal": 2.0}
+
+
 class BandConfig(Strict):
     name: Code = Field(description="Name that checks refer to.")
     metric: Code = Field(description="Metric (raw or derived) whose series is banded.")
-    method: Literal["mean_sd"] = Field("mean_sd", description="How centre and spread are learned.")
+    method: BandMethodName = Field(
+        "mean_sd",
+        description="How centre and spread are learned: mean_sd, median_mad (modified "
+        "z-score), seasonal (historical limits) or poisson (count quantiles).",
+    )
     k: float = Field(
-        3.0, gt=0, description="Width of the band in spreads either side of the centre."
+        None,  # type: ignore[assignment]  # resolved per method by _default_k
+        gt=0,
+        validate_default=True,
+        description="Width of the band in spreads either side of the centre; default 3 "
+        "for mean_sd, 3.5 for median_mad, 2 for seasonal (not read by poisson).",
     )
     window: int = Field(12, ge=2, description="How many past periods feed the band.")
     gap: int = Field(0, ge=0, description="Periods right before the evaluated one left out.")
     min_points: int = Field(6, ge=2, description="Fewest reported values needed for a band.")
+    years: int = Field(
+        5, ge=1, le=20, description="Seasonal baseline: how many previous years are used."
+    )
+    span: int = Field(
+        1, ge=0, description="Seasonal baseline: periods either side of the same period."
+    )
+    robust: bool = Field(
+        False, description="Seasonal: median and 1.4826 × MAD instead of mean and SD."
+    )
+    alpha: float = Field(
+        0.001,
+        gt=0,
+        lt=0.5,
+        description="Poisson (and the median_mad fallback): tail probability of each limit.",
+    )
+    dispersion_threshold: float = Field(
+        1.5,
+        ge=1,
+        description="Poisson: above this variance/mean ratio a negative binomial is used.",
+    )
+    baseline: Literal["window", "seasonal"] = Field(
+        "window", description="Poisson: the mean comes from the trailing window or seasonal."
+    )
+    exclude_flagged: bool = Field(
+        True, description="Values outside their own band are left out of later baselines."
+    )
     levels: list[Code] = Field(description="Levels on which the band is learned.", min_length=1)
+
+    @field_validator("k", mode="before")
+    @classmethod
+    def _default_k(cls, value: Any, info: Any) -> Any:
+        if value is None:
+            return BAND_DEFAULT_K.get(info.data.get("method", "mean_sd"), 3.0)
+        return value
+
+    @property
+    def seasonal_baseline(self) -> bool:
+        """Whether the band learns from the same season of earlier years."""
+        return self.method == "seasonal" or (
+            self.method == "poisson" and self.baseline == "seasonal"
+        )
+
+    def unused_keys(self) -> list[str]:
+        """Keys given in the file that this band's method does not read."""
+        reads = {"name", "metric", "method", "levels", "min_points", "exclude_flagged"}
+        reads |= {"years", "span"} if self.seasonal_baseline else {"window", "gap"}
+        reads |= {
+            "mean_sd": {"k"},
+            "median_mad": {"k", "alpha"},
+            "seasonal": {"k", "robust"} | ({"alpha"} if self.robust else set()),
+            "poisson": {"alpha", "dispersion_threshold", "baseline"},
+        }[self.method]
+        return sorted(self.model_fields_set - reads)
 
 
 class CheckBase(Strict):
@@ -115,16 +330,68 @@ class CheckBase(Strict):
     advice: Line | None = Field(None, description="What to do next, shown with each alert.")
 
 
+# Reporting completeness target: at least 80 % of the units expected to report, the
+# timeliness/completeness threshold of integrated disease surveillance (Fall et al.,
+# BMJ Global Health 2019;4:e001427).
+MIN_COMPLETENESS = 0.8
+ShareTest = Literal["plain", "binomial"]
+
+
+def _min_completeness() -> Any:
+    return Field(
+        MIN_COMPLETENESS,
+        ge=0,
+        le=1,
+        description="On totals: below this share of children reporting, an alert is labelled "
+        "as probably a reporting gap.",
+    )
+
+
+def _confidence() -> Any:
+    return Field(
+        0.99,
+        gt=0,
+        lt=1,
+        description="test = binomial: confidence of the Wilson score interval (0.99 = 99 %).",
+    )
+
+
 class BandCheck(CheckBase):
     kind: Literal["band"]
     band: Code = Field(description="Name of the [[band]] to compare against.")
+    min_completeness: float = _min_completeness()
 
 
 class BoundsCheck(CheckBase):
     kind: Literal["bounds"]
-    expr: str = Field(description="Expression whose value must stay within [min, max].")
+    expr: str | None = Field(
+        None,
+        description="Expression whose value must stay within [min, max]; with numerator and "
+        "denominator it is numerator / denominator × 100 and is not given.",
+    )
     low: float | None = Field(None, alias="min", description="Lowest allowed value.")
     high: float | None = Field(None, alias="max", description="Highest allowed value.")
+    numerator: str | None = Field(None, description="Share: expression counting the cases.")
+    denominator: str | None = Field(None, description="Share: expression counting all cases.")
+    test: ShareTest = Field(
+        "plain",
+        description="plain: the value outside [min, max]; binomial: the share's Wilson "
+        "interval entirely outside (needs numerator and denominator).",
+    )
+    confidence: float = _confidence()
+    min_completeness: float = _min_completeness()
+
+    @property
+    def value_expr(self) -> str:
+        """The expression evaluated: ``expr``, or the share numerator / denominator × 100."""
+        if self.numerator is not None and self.denominator is not None:
+            return f"{_grouped(self.numerator)} / {_grouped(self.denominator)} * 100"
+        return self.expr or ""
+
+
+def _grouped(text: str) -> str:
+    text = text.strip()
+    return text if text.isidentifier() else f"({text})"
 
 
 class DropoutCheck(CheckBase):
@@ -133,6 +400,12 @@ class DropoutCheck(CheckBase):
     last: Code = Field(description="Metric of the last dose.")
     low: float | None = Field(None, alias="min", description="Lowest allowed dropout, percent.")
     high: float | None = Field(None, alias="max", description="Highest allowed dropout, percent.")
+    test: ShareTest = Field(
+        "plain",
+        description="plain: the dropout outside [min, max]; binomial: the Wilson interval of "
+        "the share of non-completers entirely outside (negative dropout stays plain).",
+    )
+    confidence: float = _confidence()
 
 
 class RelationCheck(CheckBase):
@@ -264,8 +537,64 @@ class DeliveryConfig(Strict):
     )
 
 
+class TableOutput(DatabaseConfig):
+    """Bands and totals written back to a database after each run, replaced per period."""
+
+    name: str = Field(
+        "digest_bands",
+        pattern=_TABLE_NAME,
+        description="Table of the bands (schema.table allowed).",
+    )
+    totals: str = Field(
+        "digest_totals",
+        pattern=_TABLE_NAME,
+        description="Table of the totals per level: unit, level, metric, period, value, ...",
+    )
+
+
 class OutputConfig(Strict):
     dir: Path = Field(Path("out"), description="Default folder for alerts.csv, bands.parquet ...")
+    table: TableOutput | None = Field(
+        None, description="Also write bands and totals to a database: { url, name, password_env }."
+    )
+
+
+class EngineConfig(Strict):
+    kind: Literal["local", "dask"] = Field(
+        "local", description="local: numpy/pandas in this process; dask: dask.distributed."
+    )
+    scheduler: Line | None = Field(
+        None, description="Dask scheduler address (tcp://host:8786); absent: a local cluster."
+    )
+    workers: int = Field(2, ge=1, description="Local cluster: worker processes.")
+    threads_per_worker: int = Field(1, ge=1, description="Local cluster: threads per worker.")
+    processes: bool = Field(
+        True, description="Local cluster: workers as processes (false: threads of this process)."
+    )
+
+    @model_validator(mode="after")
+    def _keys_for_kind(self) -> EngineConfig:
+        local_cluster = {"workers", "threads_per_worker", "processes"}
+        if self.kind == "local":
+            extra = sorted(self.model_fields_set & ({"scheduler"} | local_cluster))
+            if extra:
+                raise ValueError(f"{', '.join(extra)}: only read with kind = 'dask'")
+        elif self.scheduler is not None:
+            if "://" not in self.scheduler:
+                raise ValueError("scheduler: give an address like tcp://10.0.0.5:8786")
+            extra = sorted(self.model_fields_set & local_cluster)
+            if extra:
+                raise ValueError(
+                    f"{', '.join(extra)}: only for a local cluster; the scheduler's cluster "
+                    "has its own workers (remove these or remove scheduler)"
+                )
+        return self
+
+
+class TuningConfig(Strict):
+    max_alerts_per_digest: int = Field(
+        15, ge=1, description="backtest: the most alerts one digest should carry in a period."
+    )
 
 
 class Config(Strict):
@@ -281,6 +610,9 @@ class Config(Strict):
     schedule: ScheduleConfig = Field(default_factory=ScheduleConfig)  # type: ignore[arg-type]
     ledger: LedgerConfig = Field(default_factory=LedgerConfig)  # type: ignore[arg-type]
     delivery: DeliveryConfig = Field(default_factory=DeliveryConfig)  # type: ignore[arg-type]
+    tuning: TuningConfig = Field(default_factory=TuningConfig)  # type: ignore[arg-type]
+    records: list[RecordsConfig] = Field(default_factory=list)
+    engine: EngineConfig = Field(default_factory=EngineConfig)  # type: ignore[arg-type]
     source: Path | None = Field(None, exclude=True, description="The file this was read from.")
 
     # ---- lookups used by the stages -------------------------------------------------
@@ -372,9 +704,21 @@ def _resolve_paths(config: Config, path: Path) -> Config:
     def resolve(p: Path | None) -> Path | None:
         return None if p is None else (p if p.is_absolute() else (base / p))
 
+    def resolve_source(s: Any) -> Any:
+        if isinstance(s, DatabaseConfig):
+            return s.model_copy(update={"url": _resolve_sqlite(s.url, base)})
+        return resolve(s)
+
     data = config.data.model_copy(
-        update={"units": resolve(config.data.units), "values": resolve(config.data.values)}
+        update={
+            "units": resolve_source(config.data.units),
+            "values": resolve_source(config.data.values),
+        }
     )
+    records = [
+        r.model_copy(update={"path": resolve(r.path), "table": resolve_source(r.table)})
+        for r in config.records
+    ]
     mail = config.mail.model_copy(
         update={
             "recipients": resolve(config.mail.recipients),
@@ -383,7 +727,9 @@ def _resolve_paths(config: Config, path: Path) -> Config:
     )
     relay = config.relay.model_copy(update={"ca_file": resolve(config.relay.ca_file)})
     sink = config.sink.model_copy(update={"maildir": resolve(config.sink.maildir)})
-    output = config.output.model_copy(update={"dir": resolve(config.output.dir)})
+    output = config.output.model_copy(
+        update={"dir": resolve(config.output.dir), "table": resolve_source(config.output.table)}
+    )
     ledger = config.ledger.model_copy(update={"url": _resolve_sqlite(config.ledger.url, base)})
     return config.model_copy(
         update={
@@ -393,6 +739,7 @@ def _resolve_paths(config: Config, path: Path) -> Config:
             "sink": sink,
             "output": output,
             "ledger": ledger,
+            "records": records,
             "source": path,
         }
     )
@@ -415,6 +762,7 @@ def cross_check(config: Config) -> list[str]:
     codes = raw + derived
     for dup in sorted({c for c in codes if codes.count(c) > 1}):
         problems.append(f"metric/derived code {dup!r} is declared twice; codes must be unique")
+    problems += _records_problems(config)
     known: set[str] = set(raw)
     for i, d in enumerate(config.derived):
         try:
@@ -429,7 +777,27 @@ def cross_check(config: Config) -> list[str]:
         if b.metric not in known:
             problems.append(f"band[{i}].metric: unknown metric {b.metric!r}; declare it first")
         problems += _level_problems(f"band[{i}].levels", b.levels, levels)
-        if b.min_points > b.window:
+        for key in b.unused_keys():
+            problems.append(
+                f"band[{i}].{key}: not read by method {b.method!r}"
+                + (" with baseline = 'window'" if key in {"years", "span"} else "")
+                + "; remove it or choose a method that uses it (see config/digest.toml)"
+            )
+        if b.seasonal_baseline:
+            per_year = 12 if config.data.period == "month" else 52
+            slots = b.years * (2 * b.span + 1)
+            if 2 * b.span >= per_year:
+                problems.append(
+                    f"band[{i}].span: {b.span} periods either side reach into the next "
+                    f"season; use at most {(per_year - 1) // 2}"
+                )
+            if b.min_points > slots:
+                problems.append(
+                    f"band[{i}].min_points: {b.min_points} is more than the {slots} values "
+                    f"of the seasonal baseline (years × (2 × span + 1)); "
+                    "no band could ever be learned"
+                )
+        elif b.min_points > b.window:
             problems.append(
                 f"band[{i}].min_points: {b.min_points} is more than window = {b.window}; "
                 "no band could ever be learned"
@@ -452,7 +820,9 @@ def cross_check(config: Config) -> list[str]:
                         f"{key}.levels: band {c.band!r} is not learned at {', '.join(missing)}; "
                         "add those levels to the band or remove them here"
                     )
-        elif isinstance(c, BoundsCheck | RelationCheck):
+        elif isinstance(c, BoundsCheck):
+            problems += _bounds_problems(key, c, known)
+        elif isinstance(c, RelationCheck):
             problems += _expr_problems(f"{key}.expr", c.expr, known)
         elif isinstance(c, DropoutCheck):
             for field in ("first", "last"):
@@ -467,6 +837,62 @@ def cross_check(config: Config) -> list[str]:
                 problems.append(f"{key}: min ({c.low}) is above max ({c.high})")
         if isinstance(c, SilenceCheck) and c.min_history > c.window:
             problems.append(f"{key}.min_history: more than window = {c.window}")
+    return problems
+
+
+def _records_problems(config: Config) -> list[str]:
+    """[[records]]: distinct names; each rule counts into a raw metric, once per source."""
+    problems: list[str] = []
+    names = [r.name for r in config.records]
+    for dup in sorted({n for n in names if names.count(n) > 1}):
+        problems.append(f"records name {dup!r} is used twice; records names must be unique")
+    raw = {m.code for m in config.metric}
+    derived = {d.code for d in config.derived}
+    for i, records in enumerate(config.records):
+        seen: set[str] = set()
+        for j, rule in enumerate(records.count):
+            key = f"records[{i}].count[{j}].metric"
+            if rule.metric in derived:
+                problems.append(
+                    f"{key}: {rule.metric!r} is a derived metric, computed by the tool; "
+                    "count into a raw [[metric]]"
+                )
+            elif rule.metric not in raw:
+                problems.append(
+                    f"{key}: unknown metric {rule.metric!r}; declare it under [[metric]]"
+                )
+            if rule.metric in seen:
+                problems.append(
+                    f"{key}: {rule.metric!r} is already counted by this source; "
+                    "combine the conditions with or"
+                )
+            seen.add(rule.metric)
+    return problems
+
+
+def _bounds_problems(key: str, c: BoundsCheck, known: set[str]) -> list[str]:
+    """expr, or numerator and denominator (a share); test = binomial needs the latter."""
+    share = {"numerator": c.numerator, "denominator": c.denominator}
+    given = [k for k, v in share.items() if v is not None]
+    if len(given) == 1:
+        missing = "denominator" if given == ["numerator"] else "numerator"
+        return [f"{key}.{missing}: required with {given[0]}; a share needs both"]
+    if given and c.expr is not None:
+        return [
+            f"{key}.expr: not used with numerator and denominator (the value is "
+            "numerator / denominator × 100); remove expr or the two share keys"
+        ]
+    if c.test == "binomial" and not given:
+        return [
+            f"{key}.test: 'binomial' needs numerator and denominator (metric expressions, "
+            "e.g. numerator = 'malaria_cases_u5', denominator = 'malaria_cases_u5 + "
+            "malaria_cases_5plus') in place of expr"
+        ]
+    if not given and c.expr is None:
+        return [f"{key}.expr: required key is missing (or give numerator and denominator)"]
+    problems: list[str] = []
+    for name, text in ({"expr": c.expr} if not given else share).items():
+        problems += _expr_problems(f"{key}.{name}", str(text), known)
     return problems
 
 

@@ -23,7 +23,12 @@ from digest.loading import Dataset
 
 
 def band(**settings_: Any) -> BandConfig:
-    base: dict[str, Any] = {"name": "b", "metric": "m", "levels": ["facility"]}
+    base: dict[str, Any] = {
+        "name": "b",
+        "metric": "m",
+        "levels": ["facility"],
+        "exclude_flagged": False,  # the issue-2 definition, as pandas computes it
+    }
     return BandConfig(**{**base, **settings_})
 
 
@@ -187,6 +192,7 @@ def _config(tmp_path: Path) -> Any:
                 "window": 4,
                 "min_points": 3,
                 "levels": ["facility", "district"],
+                "exclude_flagged": False,
             }
         ],
     }
