@@ -275,7 +275,7 @@ def bounds_check(check: BoundsCheck, ctx: Context) -> Found:
             )
         else:
             detail.append(
-                f"{text} = {fmt(x)}, {'above the upper' if above else 'below the lower'} "
+                f"{_describe(text, ctx)} = {fmt(x)}, {'above the upper' if above else 'below the lower'} "
                 f"limit {fmt(hi if above else lo)}"
                 + (
                     " (numerator above denominator: not a share)"
