@@ -239,7 +239,7 @@ def _parquet_chunks(path: Path, chunk_rows: int) -> Iterator[pd.DataFrame]:
 def _parquet_file(path: Path) -> pq.ParquetFile:
     """Open a Parquet file; a broken one fails the load stage, the message naming the file."""
     try:
-        return pq.ParquetFile(path)
+        return pq.ParquetFile(path, read_dictionary=["unit", "metric", "period"])
     except (pa.ArrowInvalid, OSError) as exc:
         raise type(exc)(f"{path}: {exc}") from exc
 
