@@ -52,13 +52,13 @@ from digest.config import (
 )
 from digest.errors import ConfigError, DataError
 from digest.evaluate import ALERT_COLUMNS, EXTRA_COLUMNS, evaluate
-from digest.hierarchy import load_hierarchy
 from digest.loading import Dataset, load_values
 from digest.periods import parse_period
 from digest.recipients import Recipient, config_programmes, load_recipients
 from digest.rollup import LevelData, rollup
 from digest.route import REQUIRED_COLUMNS as ROUTED_COLUMNS
 from digest.route import route
+from digest.sources import load_units, source_label
 
 Key = tuple[str, str | None, str]  # ("band", None, field) or ("check", name, field)
 Setting = dict[Key, Any]
@@ -206,10 +206,10 @@ class Prepared:
 
 def prepare(config: Config) -> Prepared:
     """Load units, values and recipients once; derive metrics and sum them up every level."""
-    hierarchy = load_hierarchy(config.data.units, config.data.levels)
+    hierarchy = load_units(config)
     dataset = load_values(config, hierarchy).dataset
     if not len(dataset.periods):
-        raise DataError(f"{config.data.values}: no valid rows to replay")
+        raise DataError(f"{source_label(config.data.values, 'values')}: no valid rows to replay")
     series = derive(config, dataset.values)
     levels = rollup(dataset, series, config.data.levels)
     recipients = None
