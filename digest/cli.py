@@ -87,6 +87,7 @@ def cmd_run(args: argparse.Namespace) -> int:
         as_of=args.as_of,
         out_dir=args.out,
         progress=_progress() if sys.stderr.isatty() else None,
+        clock=default_now,
     )
     _report(outcome)
     return 0 if outcome.status != "failed" else 1

@@ -258,7 +258,7 @@ def _run(
 
     outcome = None
     try:
-        outcome = run_job(config, now=now, scheduled_for=slot, run_id=run_id)
+        outcome = run_job(config, now=now, scheduled_for=slot, run_id=run_id, clock=clock)
     except DigestError as exc:
         log.error(
             "run %s failed after %.1f s: %s (recorded in the ledger; the administrator is "

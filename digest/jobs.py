@@ -75,8 +75,12 @@ def run_job(
     progress: Progress | None = None,
     sleep: Callable[[float], None] | None = None,
     run_id: str | None = None,
+    clock: Callable[[], datetime] | None = None,
 ) -> JobOutcome:
+    """``now`` is the run's start; ``clock`` (the CLI and the daemon pass the real one) gives
+    the finish time recorded in the ledger, else the finish is recorded as ``now``."""
     run_id = run_id or new_run_id(now)  # the daemon passes one, to log it on every line
+    finished = clock or (lambda: now)
     out_dir = out_dir or config.output.dir
     if mode != "relay":
         return _rehearse(config, run_id, now, mode, as_of, out_dir, preview_dir, progress)
@@ -85,9 +89,11 @@ def run_job(
             log.warning("run for the slot %s already done or running; skipped", scheduled_for)
             return JobOutcome(run_id, "skipped")
         try:
-            outcome = _record_and_queue(config, ledger, run_id, now, as_of, out_dir, progress)
+            outcome = _record_and_queue(
+                config, ledger, run_id, now, as_of, out_dir, progress, finished
+            )
         except Exception as exc:  # any failure, expected or not: never leave it 'running'
-            _fail(config, ledger, run_id, now, exc)
+            _fail(config, ledger, run_id, now, exc, finished())
             deliver_outbox(config, ledger, now, sleep=sleep)
             raise
         outcome.delivery = deliver_outbox(config, ledger, now, sleep=sleep)
@@ -102,6 +108,7 @@ def _record_and_queue(
     as_of: str | None,
     out_dir: Path,
     progress: Progress | None,
+    finished: Callable[[], datetime],
 ) -> JobOutcome:
     result = run_pipeline(config, run_id=run_id, as_of=as_of, progress=progress)
     files = write_outputs(result, out_dir)
@@ -128,16 +135,18 @@ def _record_and_queue(
         "digests": len(prepared),
         "unrouted": len(routing.unrouted),
     }
-    ledger.finish_run(run_id, now, "succeeded", result.period, result.timings, counts)
+    ledger.finish_run(run_id, finished(), "succeeded", result.period, result.timings, counts)
     return JobOutcome(run_id, "succeeded", result, prepared, routing.unrouted, files=files)
 
 
-def _fail(config: Config, ledger: Ledger, run_id: str, now: datetime, exc: Exception) -> None:
+def _fail(
+    config: Config, ledger: Ledger, run_id: str, now: datetime, exc: Exception, end: datetime
+) -> None:
     if isinstance(exc, DigestError):
         stage, error = (exc.stage if isinstance(exc, StageError) else "load"), str(exc)
     else:  # a bug or the system (disk, database) after the pipeline: outputs, ledger, mail
         stage, error = "digests", f"{type(exc).__name__}: {exc}"
-    ledger.finish_run(run_id, now, "failed", None, {}, {}, error=error)
+    ledger.finish_run(run_id, end, "failed", None, {}, {}, error=error)
     log.error("run %s failed: %s", run_id, error)
     alarm = admin_message(
         config.mail,
