@@ -11,10 +11,14 @@ import logging
 import sys
 from collections.abc import Callable, Sequence
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from digest import __version__
 from digest.config import load_config
 from digest.errors import DigestError
+
+if TYPE_CHECKING:
+    from digest.jobs import JobOutcome
 
 log = logging.getLogger("digest.cli")
 
@@ -131,22 +135,17 @@ def cmd_demo(args: argparse.Namespace) -> int:
     preview = config.output.dir / "preview"
     from digest.jobs import write_previews
 
-    outcome.files.update(write_previews(outcome.digests, preview))
-    _report(outcome, show_files=False)
+    write_previews(outcome.digests, preview)
+    _report(outcome)
     print(f"\nopen a digest: {preview}/<address>.html (or .txt, .eml)")
     return 0
 
 
-def _report(outcome, show_files: bool = True) -> None:  # type: ignore[no-untyped-def]
+def _report(outcome: JobOutcome) -> None:
     from digest.summary import print_digest_table, print_summary
 
     if outcome.result is not None:
-        files = (
-            {k: v for k, v in outcome.files.items() if "." not in k}
-            if not show_files
-            else outcome.files
-        )
-        print_summary(outcome.result, files)
+        print_summary(outcome.result, outcome.files)
     print_digest_table(outcome)
 
 

@@ -37,11 +37,22 @@ CSV_ENCODING = "utf-8-sig"  # a BOM, so spreadsheet programs read unit names as 
 _UNSAFE_ID = re.compile(r"[^A-Za-z0-9.-]+")
 
 
-def alerts_csv(alerts: pd.DataFrame) -> bytes:
-    """The alerts as RFC 4180 CSV bytes (CRLF line ends, empty cells for missing values)."""
+def alerts_csv(
+    alerts: pd.DataFrame, *, encoding: str = CSV_ENCODING, float_format: str | None = None
+) -> bytes:
+    """The alerts in the documented column order as RFC 4180 CSV bytes (CRLF line ends,
+    empty cells for missing values). The attachment keeps a BOM for spreadsheets;
+    ``alerts.csv`` (outputs.py) is plain UTF-8."""
     frame = alerts.reindex(columns=list(ALERT_COLUMNS))
     buffer = io.BytesIO()
-    frame.to_csv(buffer, index=False, na_rep="", lineterminator="\r\n", encoding=CSV_ENCODING)
+    frame.to_csv(
+        buffer,
+        index=False,
+        na_rep="",
+        lineterminator="\r\n",
+        encoding=encoding,
+        float_format=float_format,
+    )
     return buffer.getvalue()
 
 

@@ -16,7 +16,7 @@ from pathlib import Path
 
 import pandas as pd
 
-from digest.evaluate import ALERT_COLUMNS
+from digest.message import alerts_csv
 from digest.pipeline import RunResult
 
 
@@ -35,12 +35,8 @@ def write_atomic(path: Path, write: Callable[[io.BufferedWriter], None]) -> None
 
 
 def alerts_csv_bytes(alerts: pd.DataFrame) -> bytes:
-    """The alerts in the documented column order, RFC 4180 style (CRLF, empty = missing)."""
-    buffer = io.BytesIO()
-    alerts.reindex(columns=list(ALERT_COLUMNS)).to_csv(
-        buffer, index=False, lineterminator="\r\n", na_rep="", float_format="%.6g"
-    )
-    return buffer.getvalue()
+    """alerts.csv: the same writer as the digest's attachment, plain UTF-8, 6 significant digits."""
+    return alerts_csv(alerts, encoding="utf-8", float_format="%.6g")
 
 
 def write_outputs(result: RunResult, out_dir: Path) -> dict[str, Path]:
